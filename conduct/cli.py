@@ -1,0 +1,200 @@
+"""The ``conduct`` command line: a thin layer over the library.
+
+It parses arguments, calls the library, prints or writes the result, and maps
+errors to exit codes: 0 done, 2 user error (one paragraph, no traceback),
+3 an alert condition was met, 1 internal error (traceback only with
+``--debug``).  No statistics are computed here.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import textwrap
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from conduct import __version__
+from conduct.errors import ConductError
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_INTERNAL, EXIT_USER, EXIT_ALERT = 0, 1, 2, 3
+
+
+def _paragraph(prefix: str, message: str) -> str:
+    return textwrap.fill(f"{prefix}{message}", width=88, break_long_words=False,
+                         break_on_hyphens=False)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from conduct.identify import check_identification
+    from conduct.panel import load_panel
+    from conduct.study import load_study
+
+    study = load_study(args.study)
+    panel = load_panel(study)
+    print(f"study     {study.path}")
+    print(f"title     {study.title}")
+    print(f"data      {study.panel.file} (sha256 {panel.description.sha256[:12]})")
+    print("panel     " + panel.description.text().replace("\n", "\n          "))
+    d = study.demand
+    print(f"demand    {d.form}, {d.estimator}, errors {d.errors}, effects "
+          f"{', '.join(d.effects) or 'none'}")
+    print(f"          shifters {', '.join(d.shifters) or '-'}; rotators "
+          f"{', '.join(d.rotators) or '-'}; instruments {', '.join(d.instruments)}")
+    ident = check_identification(study)
+    if study.supply is None:
+        print("supply    none (demand-only study)")
+    else:
+        s = study.supply
+        print(f"supply    cost shifters {', '.join(s.cost_shifters) or '-'}; marginal cost "
+              f"{'may rise with output' if s.cost_slope else 'constant in output'}")
+        print(f"conduct   {ident.reason}")
+        print(f"models    {', '.join(c.name for c in study.candidates)}")
+    for w in ident.warnings:
+        print(_paragraph("warning: ", w), file=sys.stderr)
+    print("check     passed: nothing was estimated")
+    return EXIT_OK
+
+
+def _fmt(v: Any, spec: str = ".4f") -> str:
+    return "-" if v is None else format(v, spec)
+
+
+def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
+    d, dem = summary["data"], summary["demand"]
+    rows = [
+        ("data", f"{d['rows']} rows, {d['markets']} markets, {d['periods']} periods "
+                 f"({d['first_period']} to {d['last_period']})"),
+        ("demand", f"{dem['form']} by {dem['estimator']}, errors {dem['errors']}"),
+        ("elasticity", f"mean {_fmt(dem['elasticity']['mean'], '.3f')}, median "
+                       f"{_fmt(dem['elasticity']['median'], '.3f')}"),
+    ]
+    for name, fs in dem["first_stage"].items():
+        rows.append(("first stage", f"{name}: F = {_fmt(fs['f'], '.1f')}"))
+    c = summary.get("conduct")
+    if c:
+        lo, hi = c["ci"]
+        rows.append(("theta", f"{_fmt(c['theta'])} (se {_fmt(c['se'])}), "
+                              f"{c['level']:.0%} CI [{_fmt(lo)}, {_fmt(hi)}]"))
+        if c.get("cournot_benchmark") is not None:
+            rows.append(("cournot H", f"{_fmt(c['cournot_benchmark'])} (Q*-weighted)"))
+        for name, t in c["tests"].items():
+            state = "rejected" if t["rejected"] else "not rejected"
+            rows.append((f"test {name}", f"Wald {t['stat']:.2f}, p {t['p']:.4f}, {state}"))
+        rows.append(("verdict", c["verdict"]))
+        costs = summary["costs"]
+        rows.append(("lerner", f"mean {_fmt(costs['lerner_mean'])}; negative costs "
+                               f"{costs['negative_cost_share']:.1%} of rows"))
+    rows.append(("run folder", str(folder)))
+    width = max(len(k) for k, _ in rows)
+    lines = [f"{k:<{width}}  {v}" for k, v in rows]
+    for w in summary["warnings"]:
+        lines.append(_paragraph("warning: ", w))
+    lines.append(_paragraph("note: ", "estimates are economic evidence under stated "
+                                      "assumptions, not a legal finding."))
+    return "\n".join(lines)
+
+
+def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from conduct.pipeline import estimate
+    from conduct.runs import write_run
+
+    res = estimate(args.study)
+    folder, summary = write_run(res, label=args.label, argv=["conduct", *argv])
+    if args.json:
+        print(json.dumps(summary, indent=2, sort_keys=True))
+    elif not args.quiet:
+        print(_terminal_summary(summary, folder))
+    return EXIT_OK
+
+
+def _cmd_history(args: argparse.Namespace) -> int:
+    from conduct.runs import read_history
+    from conduct.study import load_study
+
+    study = load_study(args.study)
+    hist = read_history(study.output.runs)
+    if args.json:
+        print(json.dumps(hist.to_dict(orient="records"), indent=2, sort_keys=True,
+                         default=str))
+        return EXIT_OK
+    if hist.empty:
+        print(f"no runs recorded yet in {study.output.runs}")
+        return EXIT_OK
+    cols = ["run_id", "rows", "last_period", "theta", "ci_lo", "ci_hi", "verdict"]
+    table = hist[cols].copy()
+    for c in ("theta", "ci_lo", "ci_hi"):
+        table[c] = table[c].map(lambda v: "-" if v is None or v != v else f"{v:.4f}")
+    print(table.to_string(index=False))
+    return EXIT_OK
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="conduct",
+        description="Estimate demand, the conduct parameter and markups from a panel of "
+                    "markets, and test competitive, Cournot and collusive conduct.",
+    )
+    p.add_argument("--version", action="version", version=f"conduct {__version__}")
+    p.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    c = sub.add_parser("check", help="validate a study and its panel; estimate nothing")
+    c.add_argument("study", type=Path, help="study file (TOML)")
+    e = sub.add_parser("estimate", help="run the whole job and write a new run folder")
+    e.add_argument("study", type=Path, help="study file (TOML)")
+    e.add_argument("--json", action="store_true", help="print summary.json instead of a table")
+    e.add_argument("--quiet", action="store_true", help="print nothing on success")
+    e.add_argument("--label", help="run id to use instead of time and data hash")
+    h = sub.add_parser("history", help="one line per past run of a study")
+    h.add_argument("study", type=Path, help="study file (TOML)")
+    h.add_argument("--json", action="store_true", help="print the history as JSON")
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit code.
+
+    Parameters
+    ----------
+    argv : sequence of str or None
+        Arguments without the program name; None reads ``sys.argv``.
+
+    Returns
+    -------
+    int
+        0 done, 1 internal error, 2 user error, 3 alert met.
+    """
+    args_list = list(sys.argv[1:] if argv is None else argv)
+    parser = _parser()
+    try:
+        args = parser.parse_args(args_list)
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    handlers: dict[str, Callable[[argparse.Namespace], int]] = {
+        "check": _cmd_check,
+        "estimate": lambda a: _cmd_estimate(a, args_list),
+        "history": _cmd_history,
+    }
+    try:
+        return handlers[args.command](args)
+    except ConductError as exc:
+        print(_paragraph("conduct: error: ", str(exc)), file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("conduct: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:
+        if args.debug:
+            raise
+        print(_paragraph("conduct: internal error: ",
+                         f"{type(exc).__name__}: {exc}. This is a bug in conduct; rerun with "
+                         "--debug for the full traceback and report it."), file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,169 @@
+"""The demand stage: build the demand equation, estimate it by IV, derive slopes.
+
+Linear form (Bresnahan 1982; Lau 1982)::
+
+    Q = a_p P + sum_k a_k (P R_k) + b'X + g'R + FE + e,   dQ/dP = a_p + sum_k a_k R_k
+
+Log form::
+
+    ln Q = (h + sum_k h_k R_k) ln P + b'X + g'R + FE + e,  dQ/dP = (h + sum_k h_k R_k) Q/P
+
+Price and price x rotator are endogenous; the excluded instruments are the
+study's instruments W and, for each rotator, W x R_k.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from conduct.design import Prepared, prepare
+from conduct.diagnostics import FirstStage, first_stage_table
+from conduct.iv import IVFit, fit_iv
+from conduct.panel import Panel
+from conduct.study import Study
+
+__all__ = ["DemandResult", "estimate_demand"]
+
+
+@dataclass(frozen=True, slots=True)
+class DemandResult:
+    """The fitted demand equation and what follows from it at every observation.
+
+    Attributes
+    ----------
+    fit : IVFit
+        The IV fit (names, estimates, covariance, influence functions).
+    form : str
+        ``linear`` or ``log``.
+    price_terms : tuple of str
+        Names of the coefficients that enter the slope, price first then
+        price x rotator terms.
+    slope : numpy.ndarray
+        (n,) dQ/dP at each observation.
+    slope_grad : numpy.ndarray
+        (n, k) derivative of the slope with respect to each coefficient of ``fit``.
+    elasticity : numpy.ndarray
+        (n,) price elasticity dQ/dP * P/Q.
+    wrong_sign_share : float
+        Share of observations where the estimated slope is not negative.
+    first_stage : tuple of FirstStage
+        First-stage diagnostics per endogenous regressor.
+    prepared : Prepared
+        The absorbed design (effects, covariance choice).
+    instruments : tuple of str
+        Names of the excluded instruments used.
+    """
+
+    fit: IVFit
+    form: str
+    price_terms: tuple[str, ...]
+    slope: np.ndarray
+    slope_grad: np.ndarray
+    elasticity: np.ndarray
+    wrong_sign_share: float
+    first_stage: tuple[FirstStage, ...]
+    prepared: Prepared
+    instruments: tuple[str, ...]
+
+    def coefficients(self) -> pd.DataFrame:
+        """Coefficient table: estimate, standard error, z and p-value by name."""
+        from scipy import stats
+
+        se = self.fit.se
+        z = np.divide(self.fit.params, se, out=np.full_like(se, np.nan), where=se > 0)
+        return pd.DataFrame(
+            {"estimate": self.fit.params, "se": se, "z": z, "p": 2 * stats.norm.sf(np.abs(z))},
+            index=pd.Index(self.fit.names, name="term"),
+        )
+
+
+def _price_name(form: str) -> str:
+    return "price" if form == "linear" else "log_price"
+
+
+def estimate_demand(panel: Panel, study: Study) -> DemandResult:
+    """Estimate the study's demand equation.
+
+    Parameters
+    ----------
+    panel : Panel
+        The validated panel.
+    study : Study
+
+    Returns
+    -------
+    DemandResult
+    """
+    spec = study.demand
+    f = panel.frame
+    p = f[study.panel.price].to_numpy(dtype=float)
+    q = f[study.panel.quantity].to_numpy(dtype=float)
+    price_name = _price_name(spec.form)
+    y = q if spec.form == "linear" else np.log(q)
+    x_price = p if spec.form == "linear" else np.log(p)
+
+    data: dict[str, np.ndarray] = {"_y": y, price_name: x_price}
+    endog = [price_name]
+    for r in spec.rotators:
+        name = f"{price_name}*{r}"
+        data[name] = x_price * f[r].to_numpy(dtype=float)
+        endog.append(name)
+    exog = [*spec.shifters, *spec.rotators]
+    for c in exog:
+        data[c] = f[c].to_numpy(dtype=float)
+    instr = list(spec.instruments)
+    for w in spec.instruments:
+        data[w] = f[w].to_numpy(dtype=float)
+    for r in spec.rotators:
+        for w in spec.instruments:
+            name = f"{w}*{r}"
+            data[name] = f[w].to_numpy(dtype=float) * f[r].to_numpy(dtype=float)
+            instr.append(name)
+
+    prep = prepare(f, data, study, stage="demand")
+    cols = prep.columns
+    n = len(f)
+    exog_names = (["const"] if prep.constant else []) + exog
+    exog_arr = np.column_stack(
+        ([np.ones(n)] if prep.constant else []) + [cols[c] for c in exog]
+    ) if exog_names else np.zeros((n, 0))
+    endog_arr = np.column_stack([cols[c] for c in endog])
+    instr_arr = np.column_stack([cols[c] for c in instr])
+    names = tuple(exog_names + endog)
+    fit = fit_iv(cols["_y"], exog_arr, endog_arr, instr_arr, names,
+                 estimator=spec.estimator, cov=prep.cov)
+
+    # slope of Q in P at every observation, and its gradient in the coefficients
+    b_price = np.zeros(n) + fit.coef(price_name)
+    grad = np.zeros((n, fit.k))
+    grad[:, names.index(price_name)] = 1.0
+    for r in spec.rotators:
+        term = f"{price_name}*{r}"
+        rv = f[r].to_numpy(dtype=float)
+        b_price = b_price + fit.coef(term) * rv
+        grad[:, names.index(term)] = rv
+    if spec.form == "linear":
+        slope = b_price
+        elasticity = slope * p / q
+    else:
+        slope = b_price * q / p
+        grad = grad * (q / p)[:, None]
+        elasticity = b_price
+    first = first_stage_table(
+        endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov
+    )
+    return DemandResult(
+        fit=fit,
+        form=spec.form,
+        price_terms=tuple(endog),
+        slope=slope,
+        slope_grad=grad,
+        elasticity=elasticity,
+        wrong_sign_share=float(np.mean(slope >= 0)),
+        first_stage=first,
+        prepared=prep,
+        instruments=tuple(instr),
+    )

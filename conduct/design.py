@@ -1,0 +1,109 @@
+"""Shared design helpers: fixed-effect codes, absorption and covariance choice.
+
+Both the demand and the supply stage build their arrays the same way: pick the
+observations, absorb the study's fixed effects (or add a constant), and set up
+the covariance with the right degrees-of-freedom penalty.  This module holds
+that common step so the two stages cannot drift apart.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from conduct.absorb import Absorbed, absorb
+from conduct.errors import EstimationError
+from conduct.iv import CovSpec
+from conduct.panel import MARKET, TIME
+from conduct.study import Study
+
+__all__ = ["Prepared", "codes", "prepare"]
+
+
+@dataclass(frozen=True, slots=True)
+class Prepared:
+    """Arrays with fixed effects removed, ready for :func:`conduct.iv.fit_iv`.
+
+    Attributes
+    ----------
+    columns : dict of str to numpy.ndarray
+        Each named column after absorption, (n,).
+    constant : bool
+        True when no effects were absorbed and a constant must be added.
+    absorbed : Absorbed
+        Details of the absorption (method, sweeps, parameters absorbed).
+    cov : CovSpec
+        Covariance choice with the small-sample penalty for absorbed effects.
+    markets : numpy.ndarray
+        (n,) market codes of the rows.
+    """
+
+    columns: dict[str, np.ndarray]
+    constant: bool
+    absorbed: Absorbed
+    cov: CovSpec
+    markets: np.ndarray
+
+
+def codes(values: pd.Series | np.ndarray) -> np.ndarray:
+    """Integer codes 0..G-1 of the distinct values, in sorted order."""
+    return np.unique(np.asarray(values), return_inverse=True)[1].astype(np.int64)
+
+
+def prepare(
+    frame: pd.DataFrame,
+    data: dict[str, np.ndarray],
+    study: Study,
+    *,
+    stage: str,
+) -> Prepared:
+    """Absorb the study's fixed effects from named columns and choose the covariance.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        The rows used (with ``_market`` and ``_t``).
+    data : dict of str to numpy.ndarray
+        Columns to transform, each (n,).
+    study : Study
+    stage : str
+        ``demand`` or ``supply``, for messages.
+
+    Returns
+    -------
+    Prepared
+    """
+    effects = study.demand.effects
+    markets = codes(frame[MARKET].to_numpy())
+    periods = codes(frame[TIME].to_numpy())
+    groups = [g for name, g in (("market", markets), ("period", periods)) if name in effects]
+    names = list(data)
+    stacked = np.column_stack([data[k] for k in names]) if names else np.zeros((len(frame), 0))
+    absorbed = absorb(stacked, groups)
+    columns = {k: absorbed.values[:, i] for i, k in enumerate(names)}
+    if not groups:
+        # absorb() with no groups demeans (the intercept); keep raw columns and add a constant
+        columns = {k: np.asarray(data[k], dtype=float) for k in names}
+    n_markets = int(markets.max()) + 1
+    errors = study.demand.errors
+    if errors == "cluster" and n_markets < 2:
+        raise EstimationError(
+            f"The {stage} stage asks for cluster-robust errors by market, but the panel has "
+            "a single market. Use errors = \"robust\" or, for one market's time series, "
+            "errors = \"hac\" (Newey-West) under [demand]."
+        )
+    penalty = absorbed.df_absorbed if groups else 0
+    if errors == "cluster" and "market" in effects:
+        # market effects are nested in market clusters and are not counted
+        penalty -= n_markets
+        penalty = max(penalty, 0)
+    cov = CovSpec(
+        kind=errors,
+        clusters=markets if errors == "cluster" else None,
+        hac_lags=study.demand.hac_lags,
+        df_penalty=penalty,
+    )
+    return Prepared(columns=columns, constant=not groups, absorbed=absorbed, cov=cov,
+                    markets=markets)

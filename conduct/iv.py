@@ -1,0 +1,344 @@
+"""Linear IV estimation: the one place that calls linearmodels.
+
+:func:`fit_iv` runs 2SLS, LIML or efficient two-step GMM through linearmodels
+on data whose fixed effects were already absorbed, corrects the small-sample
+factor for the absorbed parameters, and returns an :class:`IVFit` with the
+per-observation influence function that the sequential (stacked-moment)
+variance of the supply stage needs.
+
+Small-sample conventions (stated in every fit's ``convention``):
+
+* homoskedastic: ``s2 = e'e / (n - k - a)``;
+* robust (HC1): ``n / (n - k - a)`` times the HC0 sandwich;
+* cluster: ``G/(G-1) * (n-1)/(n-k-a)`` times the cluster sandwich, where ``a``
+  counts only absorbed effects *not* nested in the clusters (market effects
+  are nested in market clusters and are not counted);
+* hac: Bartlett kernel (Newey-West) with ``n / (n - k - a)``.
+
+``k`` counts the estimated coefficients and ``a`` the absorbed fixed-effect
+parameters (including the intercept they absorb).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from linearmodels.iv import IV2SLS, IVGMM, IVLIML
+
+from conduct.errors import EstimationError
+
+__all__ = ["CovSpec", "IVFit", "cluster_cov", "fit_iv", "influence_2sls"]
+
+CovType = Literal["homoskedastic", "robust", "cluster", "hac"]
+_LM_COV = {"homoskedastic": "unadjusted", "robust": "robust", "cluster": "clustered",
+           "hac": "kernel"}
+
+
+@dataclass(frozen=True, slots=True)
+class CovSpec:
+    """How to compute a covariance.
+
+    Attributes
+    ----------
+    kind : {'homoskedastic', 'robust', 'cluster', 'hac'}
+    clusters : numpy.ndarray or None
+        (n,) integer cluster codes, required for ``cluster``.
+    hac_lags : int or None
+        Bartlett bandwidth for ``hac``; None picks ``floor(4 (n/100)^(2/9))``.
+    df_penalty : int
+        Absorbed parameters counted in the small-sample factor.
+    """
+
+    kind: CovType
+    clusters: np.ndarray | None = None
+    hac_lags: int | None = None
+    df_penalty: int = 0
+
+    def lags(self, n: int) -> int:
+        """Bartlett bandwidth used for ``n`` observations."""
+        if self.hac_lags is not None:
+            return self.hac_lags
+        return int(np.floor(4 * (n / 100.0) ** (2.0 / 9.0)))
+
+
+@dataclass(frozen=True, slots=True)
+class IVFit:
+    """A fitted linear IV regression.
+
+    Attributes
+    ----------
+    names : tuple of str
+        Regressor names, exogenous first then endogenous (length k).
+    params : numpy.ndarray
+        (k,) estimates.
+    cov : numpy.ndarray
+        (k, k) covariance under ``cov_spec`` with the stated convention.
+    resid : numpy.ndarray
+        (n,) structural residuals.
+    influence : numpy.ndarray
+        (n, k) per-observation influence ``psi_i`` with ``b - beta ~ mean(psi_i)``:
+        ``psi_i = (G'WG)^{-1} G'W z_i e_i`` with ``G = Z'X/n``.
+    nobs : int
+    k : int
+        Number of estimated coefficients.
+    estimator : str
+    cov_spec : CovSpec
+    convention : str
+        Plain statement of the small-sample convention.
+    j_stat, j_p : float or None
+        Hansen's J statistic (from two-step efficient GMM with the same covariance
+        choice) and its p-value, when over-identified.
+    j_df : int
+        Degrees of freedom of J (instruments minus endogenous regressors).
+    kappa : float
+        k-class parameter (1 for 2SLS, the LIML eigenvalue for LIML).
+    """
+
+    names: tuple[str, ...]
+    params: np.ndarray
+    cov: np.ndarray
+    resid: np.ndarray
+    influence: np.ndarray
+    nobs: int
+    k: int
+    estimator: str
+    cov_spec: CovSpec
+    convention: str
+    j_stat: float | None
+    j_p: float | None
+    j_df: int
+    kappa: float
+
+    @property
+    def se(self) -> np.ndarray:
+        """Standard errors, (k,)."""
+        return np.sqrt(np.clip(np.diag(self.cov), 0.0, None))
+
+    def coef(self, name: str) -> float:
+        """Estimate of one named coefficient."""
+        return float(self.params[self.names.index(name)])
+
+
+def convention_text(cov: CovSpec, n: int, k: int) -> str:
+    """Describe the small-sample convention of a covariance choice."""
+    a = cov.df_penalty
+    dof = f"n-k-a = {n}-{k}-{a}"
+    if cov.kind == "homoskedastic":
+        return f"homoskedastic, s2 = e'e/({dof})"
+    if cov.kind == "robust":
+        return f"heteroskedasticity-robust HC1: n/({dof}) x HC0"
+    if cov.kind == "cluster":
+        g = len(np.unique(cov.clusters)) if cov.clusters is not None else 0
+        return (f"cluster-robust, {g} clusters: G/(G-1) x (n-1)/({dof}) x sandwich "
+                "(absorbed effects nested in clusters not counted)")
+    return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
+
+
+def cluster_cov(psi: np.ndarray, cov: CovSpec, k: int) -> np.ndarray:
+    """Covariance of ``mean(psi_i)`` under a covariance choice.
+
+    Parameters
+    ----------
+    psi : numpy.ndarray
+        (n, p) influence functions.
+    cov : CovSpec
+    k : int
+        Number of estimated coefficients for the small-sample factor.
+
+    Returns
+    -------
+    numpy.ndarray
+        (p, p) covariance with the module's small-sample convention.
+    """
+    n = psi.shape[0]
+    dof = n - k - cov.df_penalty
+    if dof <= 0:
+        raise EstimationError(f"No residual degrees of freedom (n = {n}, parameters {k}).")
+    if cov.kind == "cluster":
+        if cov.clusters is None:
+            raise ValueError("cluster covariance needs clusters")
+        codes = np.unique(cov.clusters, return_inverse=True)[1]
+        g = int(codes.max()) + 1
+        sums = np.zeros((g, psi.shape[1]))
+        np.add.at(sums, codes, psi)
+        meat = sums.T @ sums
+        factor = g / (g - 1) * (n - 1) / dof
+    elif cov.kind == "hac":
+        meat = psi.T @ psi
+        for lag in range(1, cov.lags(n) + 1):
+            w = 1.0 - lag / (cov.lags(n) + 1.0)
+            g = psi[lag:].T @ psi[:-lag]
+            meat += w * (g + g.T)
+        factor = n / dof
+    else:
+        meat = psi.T @ psi
+        factor = n / dof
+    return factor * meat / n**2
+
+
+def influence_2sls(x: np.ndarray, z: np.ndarray, e: np.ndarray,
+                   weight: np.ndarray | None = None) -> np.ndarray:
+    """Per-observation influence of a linear GMM/2SLS estimator.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        (n, k) regressors.
+    z : numpy.ndarray
+        (n, m) instruments (all exogenous columns included).
+    e : numpy.ndarray
+        (n,) residuals.
+    weight : numpy.ndarray or None
+        (m, m) GMM weight; None means ``(Z'Z/n)^{-1}`` (2SLS).
+
+    Returns
+    -------
+    numpy.ndarray
+        (n, k) array ``psi_i = (G'WG)^{-1} G'W z_i e_i`` with ``G = Z'X/n``.
+    """
+    n = x.shape[0]
+    g = z.T @ x / n
+    w = np.linalg.inv(z.T @ z / n) if weight is None else weight
+    a = np.linalg.solve(g.T @ w @ g, g.T @ w)
+    return (z * e[:, None]) @ a.T
+
+
+def _lm_kwargs(cov: CovSpec, n: int) -> dict[str, object]:
+    if cov.kind == "cluster":
+        return {"clusters": cov.clusters}
+    if cov.kind == "hac":
+        return {"kernel": "bartlett", "bandwidth": cov.lags(n)}
+    return {}
+
+
+def fit_iv(
+    y: np.ndarray,
+    exog: np.ndarray,
+    endog: np.ndarray,
+    instruments: np.ndarray,
+    names: tuple[str, ...],
+    *,
+    estimator: Literal["2sls", "liml", "gmm"] = "2sls",
+    cov: CovSpec,
+) -> IVFit:
+    """Fit a linear IV regression through linearmodels.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        (n,) dependent variable (already demeaned if effects were absorbed).
+    exog : numpy.ndarray
+        (n, kx) included exogenous regressors (a constant column if no effects).
+    endog : numpy.ndarray
+        (n, ke) endogenous regressors.
+    instruments : numpy.ndarray
+        (n, kz) excluded instruments, kz >= ke.
+    names : tuple of str
+        Names of the exog then endog columns.
+    estimator : {'2sls', 'liml', 'gmm'}
+    cov : CovSpec
+
+    Returns
+    -------
+    IVFit
+
+    Raises
+    ------
+    EstimationError
+        Under-identification, collinear designs or too few observations.
+    """
+    n = len(y)
+    kx, ke, kz = exog.shape[1], endog.shape[1], instruments.shape[1]
+    k = kx + ke
+    if kz < ke:
+        raise EstimationError(
+            f"{kz} excluded instrument(s) for {ke} endogenous regressor(s): the equation "
+            "is under-identified; add instruments."
+        )
+    if n - k - cov.df_penalty <= 0:
+        raise EstimationError(f"Too few observations ({n}) for {k} coefficients plus "
+                              f"{cov.df_penalty} absorbed effects.")
+    x = np.column_stack([exog, endog])
+    z = np.column_stack([exog, instruments])
+    _check_rank(x, names, "regressors")
+    _check_rank(z, names[:kx] + tuple(f"instrument {i + 1}" for i in range(kz)), "instruments")
+    lm_cov = _LM_COV[cov.kind]
+    kwargs = _lm_kwargs(cov, n)
+    model_cls = {"2sls": IV2SLS, "liml": IVLIML}.get(estimator)
+    ex = exog if kx else None
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if model_cls is not None:
+            res = model_cls(y, ex, endog, instruments).fit(cov_type=lm_cov, debiased=True,
+                                                           **kwargs)
+            weight = None
+        else:
+            res = _gmm(y, ex, endog, instruments, cov).fit(cov_type=lm_cov, debiased=True,
+                                                            **kwargs)
+            weight = np.asarray(res.weight_matrix)
+        params = np.asarray(res.params, dtype=float)
+        lm_cov_mat = np.asarray(res.cov, dtype=float)
+        kappa = float(getattr(res, "kappa", 1.0) or 1.0)
+        j_stat = j_p = None
+        if kz > ke:
+            gmm = res if estimator == "gmm" else _gmm(y, ex, endog, instruments, cov).fit(
+                cov_type=lm_cov, debiased=True, **kwargs)
+            j_stat, j_p = float(gmm.j_stat.stat), float(gmm.j_stat.pval)
+    resid = y - x @ params
+    factor = 1.0
+    base = n - k
+    if cov.df_penalty:
+        factor = base / (base - cov.df_penalty)
+    covm = lm_cov_mat * factor
+    psi = influence_2sls(x, z, resid, weight)
+    return IVFit(
+        names=tuple(names),
+        params=params,
+        cov=covm,
+        resid=resid,
+        influence=psi,
+        nobs=n,
+        k=k,
+        estimator=estimator,
+        cov_spec=cov,
+        convention=convention_text(cov, n, k),
+        j_stat=j_stat,
+        j_p=j_p,
+        j_df=kz - ke,
+        kappa=kappa,
+    )
+
+
+def _gmm(y: np.ndarray, ex: np.ndarray | None, endog: np.ndarray, instr: np.ndarray,
+         cov: CovSpec) -> IVGMM:
+    if cov.kind == "cluster":
+        return IVGMM(y, ex, endog, instr, weight_type="clustered", clusters=cov.clusters)
+    if cov.kind == "hac":
+        return IVGMM(y, ex, endog, instr, weight_type="kernel", kernel="bartlett",
+                     bandwidth=cov.lags(len(y)))
+    if cov.kind == "homoskedastic":
+        return IVGMM(y, ex, endog, instr, weight_type="unadjusted")
+    return IVGMM(y, ex, endog, instr, weight_type="robust")
+
+
+def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
+    if a.shape[1] == 0:
+        return
+    scale = np.sqrt((a**2).mean(axis=0))
+    zero = np.flatnonzero(scale < 1e-12 * max(1.0, float(scale.max())))
+    if len(zero):
+        label = names[zero[0]] if zero[0] < len(names) else f"column {zero[0] + 1}"
+        raise EstimationError(
+            f"The {what} include '{label}', which has no variation left after the fixed "
+            "effects are removed; drop it or change the effects."
+        )
+    s = np.linalg.svd(a / scale, compute_uv=False)
+    cond = s[0] / s[-1] if s[-1] > 0 else np.inf
+    if cond > 1e10:
+        raise EstimationError(
+            f"The {what} are collinear (condition number {cond:.3g} after scaling): "
+            f"one of {', '.join(names)} is a combination of the others. Drop one."
+        )

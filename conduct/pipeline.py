@@ -1,0 +1,131 @@
+"""The whole estimation job as one function: study -> panel -> demand -> conduct -> costs.
+
+:func:`estimate` is the Python API behind ``conduct estimate``: it returns a
+frozen :class:`Results` whose fields are the stage results (frozen
+dataclasses) and pandas tables.  It writes nothing; run folders are the job
+of :mod:`conduct.runs`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from conduct.demand import DemandResult, estimate_demand
+from conduct.derived import Derived, derive
+from conduct.identify import Identification, check_identification
+from conduct.panel import Panel, load_panel
+from conduct.study import Study, load_study
+from conduct.supply import SupplyResult, estimate_supply
+
+__all__ = ["Results", "estimate"]
+
+
+@dataclass(frozen=True, slots=True)
+class Results:
+    """Everything one estimation produced.
+
+    Attributes
+    ----------
+    study : Study
+    panel : Panel
+    identification : Identification
+    demand : DemandResult
+    supply : SupplyResult or None
+        None for demand-only studies.
+    derived : Derived
+    warnings : tuple of str
+    """
+
+    study: Study
+    panel: Panel
+    identification: Identification
+    demand: DemandResult
+    supply: SupplyResult | None
+    derived: Derived
+    warnings: tuple[str, ...]
+
+    def summary(self) -> str:
+        """A short plain-text summary of the headline numbers."""
+        d = self.demand
+        lines = [f"{self.study.title}", self.panel.description.text()]
+        lines.append(
+            f"demand ({d.form}, {d.fit.estimator}): mean elasticity "
+            f"{np.mean(d.elasticity):.3f}, median {np.median(d.elasticity):.3f}"
+        )
+        for fs in d.first_stage:
+            lines.append(f"  first stage {fs.name}: F = {fs.f:.1f}")
+        s = self.supply
+        if s is not None:
+            lo, hi = s.ci
+            lines.append(f"theta = {s.theta:.4f} (se {s.se:.4f}), "
+                         f"{self.study.inference.level:.0%} CI [{lo:.4f}, {hi:.4f}]")
+            for t in s.tests:
+                mark = "rejected" if t.rejected else "not rejected"
+                lines.append(f"  {t.name:<14} Wald {t.stat:9.2f}  p {t.p:.4f}  {mark}")
+            lines.append(f"verdict: {s.verdict}")
+        return "\n".join(lines)
+
+    def __repr__(self) -> str:
+        theta = f", theta={self.supply.theta:.4f}" if self.supply is not None else ""
+        return (f"Results(study={self.study.title!r}, rows={self.panel.description.rows}"
+                f"{theta})")
+
+
+def _warnings(panel: Panel, ident: Identification, demand: DemandResult,
+              supply: SupplyResult | None, study: Study) -> tuple[str, ...]:
+    out = list(ident.warnings)
+    if panel.description.dropped_rows:
+        out.append(f"{panel.description.dropped_rows} rows with missing values were dropped.")
+    if demand.wrong_sign_share > 0:
+        out.append(
+            f"The estimated demand slope is not negative at {demand.wrong_sign_share:.1%} of "
+            "observations; those rows get no markup regressor and are left out of the supply "
+            "relation."
+        )
+    if demand.fit.cov_spec.kind == "cluster":
+        g = panel.description.markets
+        if g < 20:
+            out.append(f"Only {g} market clusters: cluster-robust inference may be unreliable.")
+    for fs in demand.first_stage:
+        if fs.f < 10:  # common practice: the Staiger-Stock rule of thumb
+            out.append(f"Weak first stage for {fs.name} in demand (F = {fs.f:.1f} < 10).")
+    if supply is not None:
+        for fs in supply.first_stage:
+            if fs.f < 10:
+                out.append(f"Weak first stage for {fs.name} in supply (F = {fs.f:.1f} < 10).")
+        if supply.h is None and any(c.theta is None for c in study.candidates):
+            out.append("No sellers or concentration column: the Cournot candidate was not "
+                       "tested.")
+    return tuple(out)
+
+
+def estimate(study: Study | str | Path) -> Results:
+    """Run the whole job on a study.
+
+    Parameters
+    ----------
+    study : Study, str or Path
+        A validated study or the path of a study file.
+
+    Returns
+    -------
+    Results
+
+    Raises
+    ------
+    conduct.errors.ConductError
+        For any user error (study file, data, identification, estimation).
+    """
+    st = study if isinstance(study, Study) else load_study(study)
+    ident = check_identification(st)
+    panel = load_panel(st)
+    demand = estimate_demand(panel, st)
+    supply = estimate_supply(panel, st, demand) if st.supply is not None else None
+    derived = derive(panel, st, demand, supply)
+    return Results(
+        study=st, panel=panel, identification=ident, demand=demand, supply=supply,
+        derived=derived, warnings=_warnings(panel, ident, demand, supply, st),
+    )

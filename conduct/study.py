@@ -1,0 +1,521 @@
+"""The study file: TOML parsed into frozen, validated dataclasses.
+
+A study is one panel plus one specification.  This module reads the TOML with
+:mod:`tomllib`, checks every key (unknown keys are errors with a did-you-mean
+suggestion; wrong types and missing required keys name the key and the file),
+resolves paths relative to the study file, and returns a :class:`Study`.
+Nothing in a study file is ever evaluated as code.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal, get_args
+
+from conduct.errors import StudyFileError, suggest
+
+__all__ = [
+    "Candidate",
+    "DemandSpec",
+    "InferenceSpec",
+    "OutputSpec",
+    "PanelSpec",
+    "Study",
+    "SupplySpec",
+    "load_study",
+    "parse_study",
+]
+
+Form = Literal["linear", "log"]
+Estimator = Literal["2sls", "liml", "gmm"]
+Errors = Literal["cluster", "robust", "homoskedastic", "hac"]
+Effect = Literal["market", "period"]
+BUILTIN_MODELS: dict[str, float | None] = {"competitive": 0.0, "cournot": None, "collusive": 1.0}
+DATA_SUFFIXES = (".csv", ".parquet", ".pq", ".dta", ".xlsx")
+
+
+@dataclass(frozen=True, slots=True)
+class PanelSpec:
+    """Where the panel is and which columns mean what.
+
+    Attributes
+    ----------
+    file : Path
+        Absolute path of the data file.
+    market, period, price, quantity : str or None
+        Column names; ``market`` is None for one market's time series.
+    sellers, concentration : str or None
+        Optional columns: number of sellers N and Herfindahl index H in [0, 1].
+    drop_missing : bool
+        Drop rows with missing values in used columns (each counted) instead of refusing.
+    sheet : str or None
+        Sheet name for Excel files.
+    """
+
+    file: Path
+    period: str
+    price: str
+    quantity: str
+    market: str | None = None
+    sellers: str | None = None
+    concentration: str | None = None
+    drop_missing: bool = False
+    sheet: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class DemandSpec:
+    """The demand equation and how to estimate it."""
+
+    instruments: tuple[str, ...]
+    form: Form = "linear"
+    shifters: tuple[str, ...] = ()
+    rotators: tuple[str, ...] = ()
+    effects: tuple[Effect, ...] = ()
+    estimator: Estimator = "2sls"
+    errors: Errors = "cluster"
+    hac_lags: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class SupplySpec:
+    """The supply relation P = MC + theta * Q*."""
+
+    cost_shifters: tuple[str, ...] = ()
+    cost_slope: bool = True
+    instruments: tuple[str, ...] = ()
+    regimes: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Candidate:
+    """A candidate model of conduct.
+
+    Attributes
+    ----------
+    name : str
+        ``competitive``, ``cournot``, ``collusive`` or a user name.
+    theta : float or None
+        Fixed conduct parameter; None means the Cournot benchmark (H or 1/N).
+    """
+
+    name: str
+    theta: float | None
+
+
+@dataclass(frozen=True, slots=True)
+class InferenceSpec:
+    """Confidence level, bootstrap replications and seed."""
+
+    level: float = 0.95
+    bootstrap: int = 0
+    seed: int = 1
+
+
+@dataclass(frozen=True, slots=True)
+class OutputSpec:
+    """Where run folders go."""
+
+    runs: Path = Path("runs")
+
+
+@dataclass(frozen=True, slots=True)
+class Study:
+    """A whole study: panel, demand, optional supply, candidates, inference, output."""
+
+    path: Path
+    title: str
+    panel: PanelSpec
+    demand: DemandSpec
+    supply: SupplySpec | None
+    candidates: tuple[Candidate, ...]
+    inference: InferenceSpec = field(default_factory=InferenceSpec)
+    output: OutputSpec = field(default_factory=OutputSpec)
+    text: str = ""
+
+    def columns(self) -> tuple[str, ...]:
+        """Every data column the study uses, in a stable order without repeats."""
+        names: list[str | None] = [
+            self.panel.market,
+            self.panel.period,
+            self.panel.price,
+            self.panel.quantity,
+            self.panel.sellers,
+            self.panel.concentration,
+            *self.demand.shifters,
+            *self.demand.rotators,
+            *self.demand.instruments,
+        ]
+        if self.supply is not None:
+            names += [*self.supply.cost_shifters, *self.supply.instruments, self.supply.regimes]
+        out: list[str] = []
+        for n in names:
+            if n and n not in out:
+                out.append(n)
+        return tuple(out)
+
+    def numeric_columns(self) -> tuple[str, ...]:
+        """Columns that must hold numbers (everything except keys and regimes)."""
+        keys = {self.panel.market, self.panel.period}
+        if self.supply is not None and self.supply.regimes:
+            keys.add(self.supply.regimes)
+        return tuple(c for c in self.columns() if c not in keys)
+
+
+# ----------------------------------------------------------------------------------------
+# A tiny schema: each table lists its keys with a converter and a default.
+# ----------------------------------------------------------------------------------------
+
+_REQUIRED = object()
+
+
+class _Reader:
+    """Reads one TOML table, key by key, and complains precisely."""
+
+    def __init__(self, table: Mapping[str, Any], where: str, file: Path) -> None:
+        self.table = dict(table)
+        self.where = where
+        self.file = file
+        self.used: set[str] = set()
+
+    def _name(self, key: str) -> str:
+        return f"{self.where}.{key}" if self.where else key
+
+    def fail(self, key: str, message: str) -> StudyFileError:
+        return StudyFileError(f"Study file {self.file}: key '{self._name(key)}' {message}")
+
+    def get(self, key: str, conv: Callable[[Any, str], Any], default: Any = _REQUIRED) -> Any:
+        self.used.add(key)
+        if key not in self.table:
+            if default is _REQUIRED:
+                raise StudyFileError(
+                    f"Study file {self.file}: required key '{self._name(key)}' is missing."
+                )
+            return default
+        return conv(self.table[key], key)
+
+    def finish(self) -> None:
+        for key in self.table:
+            if key not in self.used:
+                hint = suggest(key, self.used)
+                valid = ", ".join(sorted(self.used))
+                raise StudyFileError(
+                    f"Study file {self.file}: unknown key '{self._name(key)}'{hint}. "
+                    f"Valid keys here: {valid}."
+                )
+
+    # converters --------------------------------------------------------------------
+    def string(self, value: Any, key: str) -> str:
+        if not isinstance(value, str) or not value.strip():
+            raise self.fail(key, f"must be a non-empty string, got {value!r}.")
+        return value.strip()
+
+    def opt_string(self, value: Any, key: str) -> str | None:
+        if value == "":
+            return None
+        return self.string(value, key)
+
+    def strings(self, value: Any, key: str) -> tuple[str, ...]:
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
+            raise self.fail(key, f"must be a list of column names (strings), got {value!r}.")
+        out = tuple(v.strip() for v in value)
+        dupes = sorted({v for v in out if out.count(v) > 1})
+        if dupes:
+            raise self.fail(key, f"lists {', '.join(dupes)} more than once.")
+        return out
+
+    def number(self, value: Any, key: str) -> float:
+        ok = isinstance(value, int | float) and not isinstance(value, bool)
+        if not ok or not math.isfinite(value):
+            raise self.fail(key, f"must be a finite number, got {value!r}.")
+        return float(value)
+
+    def boolean(self, value: Any, key: str) -> bool:
+        if not isinstance(value, bool):
+            raise self.fail(key, f"must be true or false, got {value!r}.")
+        return value
+
+    def integer(self, value: Any, key: str) -> int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise self.fail(key, f"must be an integer, got {value!r}.")
+        return value
+
+    def choice(self, options: tuple[str, ...]) -> Callable[[Any, str], str]:
+        def conv(value: Any, key: str) -> str:
+            if not isinstance(value, str) or value not in options:
+                hint = suggest(str(value), options)
+                raise self.fail(
+                    key, f"is {value!r}{hint}; allowed values: {', '.join(options)}."
+                )
+            return value
+
+        return conv
+
+    def choices(self, options: tuple[str, ...]) -> Callable[[Any, str], tuple[str, ...]]:
+        one = self.choice(options)
+
+        def conv(value: Any, key: str) -> tuple[str, ...]:
+            items = self.strings(value, key) if value != [] else ()
+            return tuple(one(v, key) for v in items)
+
+        return conv
+
+
+def _table(reader: _Reader, key: str, required: bool) -> dict[str, Any] | None:
+    reader.used.add(key)
+    if key not in reader.table:
+        if required:
+            raise StudyFileError(f"Study file {reader.file}: required table [{key}] is missing.")
+        return None
+    value = reader.table[key]
+    if not isinstance(value, dict):
+        raise StudyFileError(
+            f"Study file {reader.file}: '{key}' must be a table ([{key}]), got {value!r}."
+        )
+    return value
+
+
+def _resolve(base: Path, raw: str) -> Path:
+    p = Path(raw).expanduser()
+    return p if p.is_absolute() else (base / p)
+
+
+def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
+    r = _Reader(t, "panel", file)
+    raw_file = r.get("file", r.string)
+    path = _resolve(file.parent, raw_file)
+    if path.suffix.lower() not in DATA_SUFFIXES:
+        raise r.fail(
+            "file",
+            f"names '{raw_file}', whose type '{path.suffix or '(none)'}' is not read; "
+            f"use one of {', '.join(DATA_SUFFIXES)}.",
+        )
+    spec = PanelSpec(
+        file=path,
+        market=r.get("market", r.opt_string, None),
+        period=r.get("period", r.string),
+        price=r.get("price", r.string),
+        quantity=r.get("quantity", r.string),
+        sellers=r.get("sellers", r.opt_string, None),
+        concentration=r.get("concentration", r.opt_string, None),
+        drop_missing=r.get("drop_missing", r.boolean, False),
+        sheet=r.get("sheet", r.opt_string, None),
+    )
+    r.finish()
+    roles = {
+        "market": spec.market,
+        "period": spec.period,
+        "price": spec.price,
+        "quantity": spec.quantity,
+        "sellers": spec.sellers,
+        "concentration": spec.concentration,
+    }
+    seen: dict[str, str] = {}
+    for role, col in roles.items():
+        if col is None:
+            continue
+        if col in seen:
+            raise StudyFileError(
+                f"Study file {file}: column '{col}' is given both as panel.{seen[col]} "
+                f"and panel.{role}; each role needs its own column."
+            )
+        seen[col] = role
+    return spec
+
+
+def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
+    r = _Reader(t, "demand", file)
+    spec = DemandSpec(
+        form=r.get("form", r.choice(get_args(Form)), "linear"),
+        shifters=r.get("shifters", r.strings, ()),
+        rotators=r.get("rotators", r.strings, ()),
+        instruments=r.get("instruments", r.strings),
+        effects=r.get("effects", r.choices(get_args(Effect)), ()),
+        estimator=r.get("estimator", r.choice(get_args(Estimator)), "2sls"),
+        errors=r.get("errors", r.choice(get_args(Errors)), "cluster"),
+        hac_lags=r.get("hac_lags", r.integer, None),
+    )
+    r.finish()
+    if not spec.instruments:
+        raise r.fail("instruments", "is empty: price is endogenous and needs at least one "
+                     "excluded instrument (typically a cost shifter).")
+    if spec.hac_lags is not None and spec.hac_lags < 0:
+        raise r.fail("hac_lags", f"must be zero or positive, got {spec.hac_lags}.")
+    overlap = set(spec.instruments) & (set(spec.shifters) | set(spec.rotators))
+    if overlap:
+        raise r.fail(
+            "instruments",
+            f"repeats {', '.join(sorted(overlap))}, already a demand shifter or rotator "
+            "(included exogenous variables cannot also be excluded instruments).",
+        )
+    return spec
+
+
+def _supply(t: dict[str, Any], file: Path) -> SupplySpec:
+    r = _Reader(t, "supply", file)
+    spec = SupplySpec(
+        cost_shifters=r.get("cost_shifters", r.strings, ()),
+        cost_slope=r.get("cost_slope", r.boolean, True),
+        instruments=r.get("instruments", r.strings, ()),
+        regimes=r.get("regimes", r.opt_string, None),
+    )
+    r.finish()
+    return spec
+
+
+def _candidates(t: dict[str, Any] | None, file: Path) -> tuple[Candidate, ...]:
+    if t is None:
+        return tuple(Candidate(n, v) for n, v in BUILTIN_MODELS.items())
+    r = _Reader(t, "models", file)
+
+    def conv(value: Any, key: str) -> tuple[Candidate, ...]:
+        if not isinstance(value, list) or not value:
+            raise r.fail(key, "must be a non-empty list of model names or {name, theta} tables.")
+        out: list[Candidate] = []
+        for i, item in enumerate(value):
+            if isinstance(item, str):
+                if item not in BUILTIN_MODELS:
+                    hint = suggest(item, BUILTIN_MODELS)
+                    raise r.fail(
+                        key,
+                        f"item {i + 1} is '{item}'{hint}; built-in models are "
+                        f"{', '.join(BUILTIN_MODELS)}; others need {{name = \"...\", theta = x}}.",
+                    )
+                out.append(Candidate(item, BUILTIN_MODELS[item]))
+            elif isinstance(item, dict):
+                sub = _Reader(item, f"models.candidates[{i + 1}]", file)
+                name = sub.get("name", sub.string)
+                theta = sub.get("theta", sub.number)
+                sub.finish()
+                if name in BUILTIN_MODELS:
+                    raise sub.fail("name", f"'{name}' is a built-in model; choose another name.")
+                if not 0.0 <= theta <= 1.0:
+                    raise sub.fail("theta", f"must lie in [0, 1], got {theta}.")
+                out.append(Candidate(name, float(theta)))
+            else:
+                raise r.fail(key, f"item {i + 1} must be a name or a table, got {item!r}.")
+        names = [c.name for c in out]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise r.fail(key, f"names {', '.join(dupes)} more than once.")
+        return tuple(out)
+
+    cands = r.get("candidates", conv)
+    r.finish()
+    return cands
+
+
+
+def _inference(t: dict[str, Any] | None, file: Path) -> InferenceSpec:
+    if t is None:
+        return InferenceSpec()
+    r = _Reader(t, "inference", file)
+
+    def level(value: Any, key: str) -> float:
+        if isinstance(value, bool) or not isinstance(value, int | float) or not 0.5 <= value < 1:
+            raise r.fail(key, f"must be a number in [0.5, 1), e.g. 0.95; got {value!r}.")
+        return float(value)
+
+    spec = InferenceSpec(
+        level=r.get("level", level, 0.95),
+        bootstrap=r.get("bootstrap", r.integer, 0),
+        seed=r.get("seed", r.integer, 1),
+    )
+    r.finish()
+    if spec.bootstrap < 0:
+        raise r.fail("bootstrap", f"must be 0 (analytic only) or a positive count, got "
+                     f"{spec.bootstrap}.")
+    return spec
+
+
+def _output(t: dict[str, Any] | None, file: Path) -> OutputSpec:
+    if t is None:
+        return OutputSpec(runs=file.parent / "runs")
+    r = _Reader(t, "output", file)
+    spec = OutputSpec(runs=_resolve(file.parent, r.get("runs", r.string, "runs")))
+    r.finish()
+    return spec
+
+
+def parse_study(text: str, path: Path) -> Study:
+    """Parse and validate study-file text.
+
+    Parameters
+    ----------
+    text : str
+        TOML text of the study file.
+    path : Path
+        Where it came from; relative paths resolve against its folder.
+
+    Returns
+    -------
+    Study
+        The validated, frozen study.
+
+    Raises
+    ------
+    StudyFileError
+        On invalid TOML, unknown keys, wrong types or missing required keys.
+    """
+    path = path.resolve()
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyFileError(f"Study file {path} is not valid TOML: {exc}.") from None
+    top = _Reader(raw, "", path)
+    title = top.get("title", top.string, path.stem)
+    panel = _panel(_table(top, "panel", True) or {}, path)
+    demand = _demand(_table(top, "demand", True) or {}, path)
+    supply_t = _table(top, "supply", False)
+    supply = _supply(supply_t, path) if supply_t is not None else None
+    candidates = _candidates(_table(top, "models", False), path)
+    inference = _inference(_table(top, "inference", False), path)
+    output = _output(_table(top, "output", False), path)
+    top.finish()
+    return Study(
+        path=path,
+        title=title,
+        panel=panel,
+        demand=demand,
+        supply=supply,
+        candidates=candidates,
+        inference=inference,
+        output=output,
+        text=text,
+    )
+
+
+def load_study(path: str | Path) -> Study:
+    """Read and validate a study file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML study file.
+
+    Returns
+    -------
+    Study
+    """
+    p = Path(path)
+    if p.is_dir():
+        raise StudyFileError(f"Study file {p} is a directory; give the path of a .toml file.")
+    try:
+        data = p.read_bytes()
+    except FileNotFoundError:
+        raise StudyFileError(f"Study file {p} does not exist.") from None
+    except OSError as exc:
+        raise StudyFileError(f"Study file {p} cannot be read: {exc.strerror}.") from None
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise StudyFileError(
+            f"Study file {p} is not UTF-8 text (byte {exc.start}); save it as UTF-8."
+        ) from None
+    return parse_study(text, p)

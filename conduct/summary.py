@@ -1,0 +1,152 @@
+"""Turn :class:`~conduct.pipeline.Results` into the machine-readable ``summary.json``.
+
+The stable keys of the design (``data``, ``demand``, ``conduct``, ``menu``,
+``costs``, ``warnings``) are always present; sections that a study does not
+estimate hold ``null``.  Floats are plain JSON numbers (NaN and infinities
+become ``null``); keys are sorted when written.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from conduct.pipeline import Results
+
+__all__ = ["CAUTION", "build_summary", "clean"]
+
+CAUTION = (
+    "Conduct estimates are economic evidence under stated assumptions (functional forms, "
+    "valid instruments, static conduct), not proof of an infringement. Dynamic collusion can "
+    "look like Cournot or competition in a static conduct parameter (Corts 1999). Defer to "
+    "the applicable competition law and to qualified counsel; keep confidential data "
+    "confidential."
+)
+
+
+def clean(value: Any) -> Any:
+    """Recursively convert numpy scalars/arrays and non-finite floats for JSON."""
+    if isinstance(value, dict):
+        return {str(k): clean(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [clean(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [clean(v) for v in value.tolist()]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def build_summary(res: Results) -> dict[str, Any]:
+    """Build the ``summary.json`` document of a run (without run provenance).
+
+    Parameters
+    ----------
+    res : Results
+
+    Returns
+    -------
+    dict
+        JSON-ready nested dictionary with the design's stable keys.
+    """
+    d = res.panel.description
+    dem = res.demand
+    coefs = dem.coefficients()
+    demand = {
+        "form": dem.form,
+        "estimator": dem.fit.estimator,
+        "errors": dem.fit.cov_spec.kind,
+        "convention": dem.fit.convention,
+        "observations": dem.fit.nobs,
+        "effects": list(res.study.demand.effects),
+        "fixed_effects_method": dem.prepared.absorbed.method,
+        "coefficients": {
+            name: {"estimate": float(row.estimate), "se": float(row.se)}
+            for name, row in coefs.iterrows()
+        },
+        "elasticity": {
+            "mean": float(np.mean(dem.elasticity)),
+            "median": float(np.median(dem.elasticity)),
+        },
+        "wrong_slope_share": dem.wrong_sign_share,
+        "first_stage": {
+            fs.name: {"f": fs.f, "p": fs.p, "df": list(fs.df), "partial_r2": fs.partial_r2,
+                      "convention": fs.convention}
+            for fs in dem.first_stage
+        },
+        "hansen_j": (
+            {"stat": dem.fit.j_stat, "p": dem.fit.j_p, "df": dem.fit.j_df}
+            if dem.fit.j_stat is not None else None
+        ),
+        "instruments": list(dem.instruments),
+    }
+    conduct: dict[str, Any] | None = None
+    costs: dict[str, Any] | None = None
+    s = res.supply
+    if s is not None:
+        coef_s = s.coefficients()
+        conduct = {
+            "theta": s.theta,
+            "se": s.se,
+            "se_naive": s.se_naive,
+            "se_method": "sequential GMM (Newey-McFadden 1994, sec. 6), "
+                         f"{s.prepared.cov.kind} by market",
+            "ci": list(s.ci),
+            "level": res.study.inference.level,
+            "ar_set": None,
+            "tests": {
+                t.name: {"stat": t.stat, "p": t.p, "delta": t.delta, "se": t.se,
+                         "rejected": t.rejected, "null": t.null}
+                for t in s.tests
+            },
+            "verdict": s.verdict,
+            "not_rejected": list(s.not_rejected),
+            "identified": res.identification.identified,
+            "identification": res.identification.reason,
+            "cournot_benchmark": s.cournot_benchmark,
+            "observations": len(s.rows),
+            "coefficients": {
+                name: {"estimate": float(row.estimate), "se": float(row.se),
+                       "se_naive": float(row.se_naive)}
+                for name, row in coef_s.iterrows()
+            },
+            "first_stage": {
+                fs.name: {"f": fs.f, "p": fs.p, "df": list(fs.df),
+                          "partial_r2": fs.partial_r2, "convention": fs.convention}
+                for fs in s.first_stage
+            },
+            "instruments": list(s.instruments),
+        }
+        costs = {
+            "marginal_cost_mean": res.derived.marginal_cost_mean,
+            "lerner_mean": res.derived.lerner_mean,
+            "negative_cost_share": res.derived.negative_cost_share["estimated"],
+            "negative_cost_share_by_model": res.derived.negative_cost_share,
+        }
+    summary = {
+        "title": res.study.title,
+        "data": {
+            "file": res.study.panel.file.name,
+            "sha256": d.sha256,
+            "rows": d.rows,
+            "markets": d.markets,
+            "periods": d.periods,
+            "first_period": d.first_period,
+            "last_period": d.last_period,
+            "dropped_rows": d.dropped_rows,
+            "dropped_by_column": d.dropped_detail,
+            "balanced": d.balanced,
+            "gaps": d.gaps,
+        },
+        "demand": demand,
+        "conduct": conduct,
+        "menu": None,
+        "costs": costs,
+        "warnings": list(res.warnings),
+        "caution": CAUTION,
+    }
+    return clean(summary)
