@@ -103,7 +103,7 @@ def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     from conduct.pipeline import estimate
     from conduct.runs import write_run
 
-    res = estimate(args.study)
+    res = estimate(args.study, quiet=args.quiet or args.json)
     folder, summary = write_run(res, label=args.label, argv=["conduct", *argv])
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
@@ -133,6 +133,29 @@ def _cmd_history(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_simulate(args: argparse.Namespace) -> int:
+    from conduct.presets import run_simulate
+
+    out: Path = args.out
+    taken = [n for n in ("panel.csv", "panel.parquet", "study.toml", "truth.json",
+                         "truth_observations.csv") if (out / n).exists()]
+    if out.exists() and not out.is_dir():
+        raise ConductError(f"Output folder {out} exists and is not a folder.")
+    if taken and not args.replace:
+        raise ConductError(
+            f"Output folder {out} already holds {', '.join(taken)}; conduct never overwrites "
+            "files you have. Choose another --out folder, or add --replace to overwrite them."
+        )
+    study = run_simulate(out, preset=args.preset, markets=args.markets, periods=args.periods,
+                         conduct=args.conduct, episode=args.episode, form=args.form,
+                         seed=args.seed, fmt=args.format)
+    if not args.quiet:
+        print(f"wrote {study.parent}: panel.{args.format}, study.toml, truth.json, "
+              "truth_observations.csv")
+        print(f"next: conduct estimate {study}")
+    return EXIT_OK
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="conduct",
@@ -149,6 +172,22 @@ def _parser() -> argparse.ArgumentParser:
     e.add_argument("--json", action="store_true", help="print summary.json instead of a table")
     e.add_argument("--quiet", action="store_true", help="print nothing on success")
     e.add_argument("--label", help="run id to use instead of time and data hash")
+    m = sub.add_parser("simulate", help="write a synthetic panel with known conduct, its "
+                       "study file and the truth")
+    m.add_argument("--out", type=Path, required=True, help="folder to write into")
+    m.add_argument("--preset", help="named scenario, e.g. road-salt (the demo study)")
+    m.add_argument("--markets", type=int, help="number of markets")
+    m.add_argument("--periods", type=int, help="number of periods")
+    m.add_argument("--conduct", help="competitive, cournot, collusive or a theta in [0, 1]")
+    m.add_argument("--episode", help="a different conduct in some markets and periods, e.g. "
+                   "collusive:markets=1-8:periods=2018Q1-2020Q4 (several joined by ';'; "
+                   "'none' removes the preset's)")
+    m.add_argument("--form", choices=["linear", "log"], help="demand form")
+    m.add_argument("--seed", type=int, help="random seed (same seed, same bytes)")
+    m.add_argument("--format", choices=["csv", "parquet"], default="csv",
+                   help="panel file format")
+    m.add_argument("--replace", action="store_true", help="overwrite files already in --out")
+    m.add_argument("--quiet", action="store_true", help="print nothing on success")
     h = sub.add_parser("history", help="one line per past run of a study")
     h.add_argument("study", type=Path, help="study file (TOML)")
     h.add_argument("--json", action="store_true", help="print the history as JSON")
@@ -178,6 +217,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "check": _cmd_check,
         "estimate": lambda a: _cmd_estimate(a, args_list),
         "history": _cmd_history,
+        "simulate": _cmd_simulate,
     }
     try:
         return handlers[args.command](args)

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
+from conduct.bootstrap import BootstrapResult, cluster_bootstrap
 from conduct.demand import DemandResult, estimate_demand
 from conduct.derived import Derived, derive
 from conduct.identify import Identification, check_identification
@@ -36,6 +37,8 @@ class Results:
     supply : SupplyResult or None
         None for demand-only studies.
     derived : Derived
+    bootstrap : BootstrapResult or None
+        Cluster bootstrap of theta when ``[inference] bootstrap`` > 0.
     warnings : tuple of str
     """
 
@@ -45,6 +48,7 @@ class Results:
     demand: DemandResult
     supply: SupplyResult | None
     derived: Derived
+    bootstrap: BootstrapResult | None
     warnings: tuple[str, ...]
 
     def summary(self) -> str:
@@ -102,13 +106,15 @@ def _warnings(panel: Panel, ident: Identification, demand: DemandResult,
     return tuple(out)
 
 
-def estimate(study: Study | str | Path) -> Results:
+def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     """Run the whole job on a study.
 
     Parameters
     ----------
     study : Study, str or Path
         A validated study or the path of a study file.
+    quiet : bool
+        Suppress progress bars (shown only on a terminal anyway).
 
     Returns
     -------
@@ -125,7 +131,15 @@ def estimate(study: Study | str | Path) -> Results:
     demand = estimate_demand(panel, st)
     supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
+    boot = None
+    if supply is not None and st.inference.bootstrap > 0:
+        boot = cluster_bootstrap(panel, st, replications=st.inference.bootstrap,
+                                 seed=st.inference.seed, quiet=quiet)
+    warnings = _warnings(panel, ident, demand, supply, st)
+    if boot is not None and boot.failures:
+        warnings += (f"{boot.failures} of {boot.replications} bootstrap replicates could not "
+                     "be estimated and were left out.",)
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
-        derived=derived, warnings=_warnings(panel, ident, demand, supply, st),
+        derived=derived, bootstrap=boot, warnings=warnings,
     )

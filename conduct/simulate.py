@@ -171,14 +171,14 @@ class SimulationSpec:
     demand_shifters: tuple[tuple[str, float], ...] = (("highway_km", 8000.0),)
     market_effect_sd: float = 4000.0
     period_effect_sd: float = 1500.0
-    demand_shock_sd: float = 2000.0
+    demand_shock_sd: float = 1200.0
     sellers: tuple[int, int] = (2, 6)
     entry_exit_rate: float = 0.05
-    cost_constant: float = 5.0
+    cost_constant: float = 2.0
     cost_shifters: tuple[tuple[str, float], ...] = (
-        ("diesel", 0.20),
-        ("energy", 0.12),
-        ("wage", 0.25),
+        ("diesel", 0.30),
+        ("energy", 0.15),
+        ("wage", 0.20),
     )
     cost_slope: float = 0.0
     cost_slope_scope: Scope = "firm"
@@ -186,7 +186,7 @@ class SimulationSpec:
     cost_shock_sd: float = 1.5
     conduct: Conduct = "cournot"
     episodes: tuple[Episode, ...] = ()
-    instrument_interactions: bool = True
+    instrument_interactions: bool = False
     title: str = "Synthetic homogeneous-good markets (invented data)"
     seed: int = 1
 
@@ -447,17 +447,19 @@ def solve_market(
         else:
             price, q = _solve_log(intercept, slope, c, kind, theta, cq, cqi, where)
         total = float(q.sum())
-        if not (total > 0 and price > 0):
+        viable = total > 0 and price > 0
+        if viable:
+            mc = c + cq * q + cqi * total
+            last_out = q[-1] <= 0 if kind != "quota" else mc[-1] > price
+            if not last_out:
+                break
+        elif n == 1:
             knob = "intercept" if form == "linear" else "intercept (log scale)"
             raise StudyFileError(
                 f"No interior equilibrium at {where}: quantity {total:.4g} at price "
                 f"{price:.4g}; demand is too small for these costs: raise {knob} or lower "
                 "cost_constant."
             )
-        mc = c + cq * q + cqi * total
-        last_out = q[-1] <= 0 if kind != "quota" else mc[-1] > price
-        if n == 1 or not last_out:
-            break
         n -= 1
     outputs = np.zeros(len(c_all))
     outputs[order[:n]] = np.maximum(q, 0.0)
@@ -615,7 +617,7 @@ def _index_paths(rng: np.random.Generator, m: int, t: int) -> np.ndarray:
     national -= national[0]
     regional = rng.uniform(-0.06, 0.06, m)
     local = np.zeros((m, t))
-    shocks = rng.normal(0.0, 0.08, (m, t))
+    shocks = rng.normal(0.0, 0.10, (m, t))
     local[:, 0] = shocks[:, 0] / math.sqrt(1 - 0.7**2)
     for s in range(1, t):
         local[:, s] = 0.7 * local[:, s - 1] + shocks[:, s]

@@ -120,6 +120,13 @@ def build_summary(res: Results) -> dict[str, Any]:
                 for fs in s.first_stage
             },
             "instruments": list(s.instruments),
+            "bootstrap": (
+                {"replications": res.bootstrap.replications, "failures": res.bootstrap.failures,
+                 "se": res.bootstrap.se, "ci": list(res.bootstrap.ci),
+                 "seed": res.bootstrap.seed, "method": "cluster bootstrap by market, both "
+                 "stages re-estimated, percentile interval"}
+                if res.bootstrap is not None else None
+            ),
         }
         costs = {
             "marginal_cost_mean": res.derived.marginal_cost_mean,

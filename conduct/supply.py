@@ -144,7 +144,8 @@ def _markup_h(c: Candidate, h: np.ndarray | None, n: int) -> np.ndarray | None:
     return h
 
 
-def estimate_supply(panel: Panel, study: Study, demand: DemandResult) -> SupplyResult:
+def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
+                    with_tests: bool = True) -> SupplyResult:
     """Estimate theta and test each candidate model.
 
     Parameters
@@ -153,6 +154,9 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult) -> SupplyR
     study : Study
         Must have a ``[supply]`` table; identification already checked.
     demand : DemandResult
+    with_tests : bool
+        Test each candidate and compute first-stage diagnostics; False skips
+        them (bootstrap replicates need only the estimates).
 
     Returns
     -------
@@ -190,6 +194,8 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult) -> SupplyR
         else:
             data[name] = fs[name].to_numpy(dtype=float)
     cands = [c for c in study.candidates if _markup_h(c, h, len(rows)) is not None]
+    if not with_tests:
+        cands = []
     for c in cands:
         hc = _markup_h(c, h, len(rows))
         data[f"_dep:{c.name}"] = p - hc * qstar
@@ -252,7 +258,8 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult) -> SupplyR
     kept = tuple(t.name for t in tests if not t.rejected)
     verdict = kept[0] if len(kept) == 1 else "inconclusive"
     bench = float(np.sum(h * qstar) / np.sum(qstar)) if h is not None else None
-    first = first_stage_table(endog, instr, exog, tuple(endog_names), prep.cov)
+    first = (first_stage_table(endog, instr, exog, tuple(endog_names), prep.cov)
+             if with_tests else ())
     return SupplyResult(
         fit=main, cov=cov, theta=theta, se=se, se_naive=float(main.se[i_theta]),
         ci=(theta - zc * se, theta + zc * se), tests=tuple(tests), verdict=verdict,
