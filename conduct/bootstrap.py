@@ -86,7 +86,7 @@ def one_replicate(panel: Panel, study: Study, seed: int, r: int) -> float:
     rng = np.random.default_rng([seed, r])
     boot = resample_markets(panel, rng)
     try:
-        demand = estimate_demand(boot, study)
+        demand = estimate_demand(boot, study, diagnostics=False)
         supply = estimate_supply(boot, study, demand, with_tests=False)
     except ConductError:
         return float("nan")

@@ -84,7 +84,7 @@ def _price_name(form: str) -> str:
     return "price" if form == "linear" else "log_price"
 
 
-def estimate_demand(panel: Panel, study: Study) -> DemandResult:
+def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> DemandResult:
     """Estimate the study's demand equation.
 
     Parameters
@@ -92,6 +92,9 @@ def estimate_demand(panel: Panel, study: Study) -> DemandResult:
     panel : Panel
         The validated panel.
     study : Study
+    diagnostics : bool
+        Compute first-stage diagnostics and Hansen's J; False skips them
+        (bootstrap replicates need only the estimates).
 
     Returns
     -------
@@ -134,7 +137,7 @@ def estimate_demand(panel: Panel, study: Study) -> DemandResult:
     instr_arr = np.column_stack([cols[c] for c in instr])
     names = tuple(exog_names + endog)
     fit = fit_iv(cols["_y"], exog_arr, endog_arr, instr_arr, names,
-                 estimator=spec.estimator, cov=prep.cov)
+                 estimator=spec.estimator, cov=prep.cov, overid=diagnostics)
 
     # slope of Q in P at every observation, and its gradient in the coefficients
     b_price = np.zeros(n) + fit.coef(price_name)
@@ -152,9 +155,8 @@ def estimate_demand(panel: Panel, study: Study) -> DemandResult:
         slope = b_price * q / p
         grad = grad * (q / p)[:, None]
         elasticity = b_price
-    first = first_stage_table(
-        endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov
-    )
+    first = (first_stage_table(endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov)
+             if diagnostics else ())
     return DemandResult(
         fit=fit,
         form=spec.form,

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 from linearmodels.iv import IV2SLS, IVGMM, IVLIML
@@ -223,6 +223,7 @@ def fit_iv(
     *,
     estimator: Literal["2sls", "liml", "gmm"] = "2sls",
     cov: CovSpec,
+    overid: bool = True,
 ) -> IVFit:
     """Fit a linear IV regression through linearmodels.
 
@@ -240,6 +241,9 @@ def fit_iv(
         Names of the exog then endog columns.
     estimator : {'2sls', 'liml', 'gmm'}
     cov : CovSpec
+    overid : bool
+        Compute Hansen's J when over-identified (False skips it, e.g. in bootstrap
+        replicates).
 
     Returns
     -------
@@ -276,16 +280,15 @@ def fit_iv(
                                                            **kwargs)
             weight = None
         else:
-            res = _gmm(y, ex, endog, instruments, cov).fit(cov_type=lm_cov, debiased=True,
-                                                            **kwargs)
+            res = _fit_gmm(y, ex, endog, instruments, cov, lm_cov, kwargs)
             weight = np.asarray(res.weight_matrix)
         params = np.asarray(res.params, dtype=float)
         lm_cov_mat = np.asarray(res.cov, dtype=float)
         kappa = float(getattr(res, "kappa", 1.0) or 1.0)
         j_stat = j_p = None
-        if kz > ke:
-            gmm = res if estimator == "gmm" else _gmm(y, ex, endog, instruments, cov).fit(
-                cov_type=lm_cov, debiased=True, **kwargs)
+        if kz > ke and overid and _enough_clusters(cov, kx + kz):
+            gmm = res if estimator == "gmm" else _fit_gmm(y, ex, endog, instruments, cov,
+                                                          lm_cov, kwargs)
             j_stat, j_p = float(gmm.j_stat.stat), float(gmm.j_stat.pval)
     resid = y - x @ params
     factor = 1.0
@@ -310,6 +313,24 @@ def fit_iv(
         j_df=kz - ke,
         kappa=kappa,
     )
+
+
+def _enough_clusters(cov: CovSpec, moments: int) -> bool:
+    if cov.kind != "cluster" or cov.clusters is None:
+        return True
+    return len(np.unique(cov.clusters)) > moments
+
+
+def _fit_gmm(y: np.ndarray, ex: np.ndarray | None, endog: np.ndarray, instr: np.ndarray,
+             cov: CovSpec, lm_cov: str, kwargs: dict[str, object]) -> Any:
+    moments = (0 if ex is None else ex.shape[1]) + instr.shape[1]
+    if not _enough_clusters(cov, moments):
+        g = len(np.unique(cov.clusters)) if cov.clusters is not None else 0
+        raise EstimationError(
+            f"Efficient GMM with cluster-robust weights needs more clusters ({g}) than "
+            f"moment conditions ({moments}); use estimator = \"2sls\" or fewer instruments."
+        )
+    return _gmm(y, ex, endog, instr, cov).fit(cov_type=lm_cov, debiased=True, **kwargs)
 
 
 def _gmm(y: np.ndarray, ex: np.ndarray | None, endog: np.ndarray, instr: np.ndarray,

@@ -20,6 +20,7 @@ from conduct.identify import Identification, check_identification
 from conduct.panel import Panel, load_panel
 from conduct.study import Study, load_study
 from conduct.supply import SupplyResult, estimate_supply
+from conduct.thetaset import ThetaSet, theta_ar_set
 
 __all__ = ["Results", "estimate"]
 
@@ -37,6 +38,8 @@ class Results:
     supply : SupplyResult or None
         None for demand-only studies.
     derived : Derived
+    theta_set : ThetaSet or None
+        Anderson-Rubin confidence set for theta.
     bootstrap : BootstrapResult or None
         Cluster bootstrap of theta when ``[inference] bootstrap`` > 0.
     warnings : tuple of str
@@ -48,6 +51,7 @@ class Results:
     demand: DemandResult
     supply: SupplyResult | None
     derived: Derived
+    theta_set: ThetaSet | None
     bootstrap: BootstrapResult | None
     warnings: tuple[str, ...]
 
@@ -131,6 +135,7 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     demand = estimate_demand(panel, st)
     supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
+    theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
     boot = None
     if supply is not None and st.inference.bootstrap > 0:
         boot = cluster_bootstrap(panel, st, replications=st.inference.bootstrap,
@@ -141,5 +146,5 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
                      "be estimated and were left out.",)
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
-        derived=derived, bootstrap=boot, warnings=warnings,
+        derived=derived, theta_set=theta_set, bootstrap=boot, warnings=warnings,
     )

@@ -97,7 +97,14 @@ def build_summary(res: Results) -> dict[str, Any]:
                          f"{s.prepared.cov.kind} by market",
             "ci": list(s.ci),
             "level": res.study.inference.level,
-            "ar_set": None,
+            "ar_set": (
+                {"intervals": [list(iv) for iv in res.theta_set.intervals],
+                 "kind": res.theta_set.kind, "level": res.theta_set.level,
+                 "df": res.theta_set.df, "searched": list(res.theta_set.searched),
+                 "reading": res.theta_set.describe(),
+                 "note": "null bounds mean the set runs past the searched range"}
+                if res.theta_set is not None else None
+            ),
             "tests": {
                 t.name: {"stat": t.stat, "p": t.p, "delta": t.delta, "se": t.se,
                          "rejected": t.rejected, "null": t.null}

@@ -234,7 +234,8 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
                        df_penalty=cov_full.df_penalty)
         return cluster_cov(psi, spec, fit.k)
 
-    main = fit_iv(cols["_p"], exog, endog, instr, names, estimator="2sls", cov=prep.cov)
+    main = fit_iv(cols["_p"], exog, endog, instr, names, estimator="2sls", cov=prep.cov,
+                  overid=with_tests)
     cov = sequential(main, np.zeros(n))
     theta = float(main.params[i_theta])
     se = float(np.sqrt(cov[i_theta, i_theta]))
