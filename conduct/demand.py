@@ -20,10 +20,12 @@ import numpy as np
 import pandas as pd
 
 from conduct.design import Prepared, prepare
-from conduct.diagnostics import FirstStage, first_stage_table
+from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
+from conduct.errors import EstimationError
 from conduct.iv import IVFit, fit_iv
 from conduct.panel import Panel
 from conduct.study import Study
+from conduct.weakiv import ARSet, anderson_rubin_set
 
 __all__ = ["DemandResult", "estimate_demand"]
 
@@ -51,6 +53,13 @@ class DemandResult:
         Share of observations where the estimated slope is not negative.
     first_stage : tuple of FirstStage
         First-stage diagnostics per endogenous regressor.
+    strength : Strength or None
+        Effective F and the Stock-Yogo reading (None when diagnostics are skipped).
+    ar_set : ARSet or None
+        Anderson-Rubin confidence set for the price coefficient (one endogenous
+        regressor, i.e. no rotators, and non-HAC errors only).
+    ar_note : str
+        Why there is no Anderson-Rubin set, when there is none.
     prepared : Prepared
         The absorbed design (effects, covariance choice).
     instruments : tuple of str
@@ -65,6 +74,9 @@ class DemandResult:
     elasticity: np.ndarray
     wrong_sign_share: float
     first_stage: tuple[FirstStage, ...]
+    strength: Strength | None
+    ar_set: ARSet | None
+    ar_note: str
     prepared: Prepared
     instruments: tuple[str, ...]
 
@@ -137,7 +149,8 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     instr_arr = np.column_stack([cols[c] for c in instr])
     names = tuple(exog_names + endog)
     fit = fit_iv(cols["_y"], exog_arr, endog_arr, instr_arr, names,
-                 estimator=spec.estimator, cov=prep.cov, overid=diagnostics)
+                 estimator=spec.estimator, cov=prep.cov, overid=diagnostics,
+                 instrument_names=tuple(instr))
 
     # slope of Q in P at every observation, and its gradient in the coefficients
     b_price = np.zeros(n) + fit.coef(price_name)
@@ -157,6 +170,26 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
         elasticity = b_price
     first = (first_stage_table(endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov)
              if diagnostics else ())
+    strength = None
+    ar_set = None
+    ar_note = "not computed"
+    if diagnostics:
+        strength = stage_strength(endog_arr, instr_arr, exog_arr, first, prep.cov,
+                                  f"the {price_name} coefficient")
+        if len(endog) > 1:
+            ar_note = ("several endogenous regressors (price x rotator terms): the set is "
+                       "reported for theta, not for the price coefficient")
+        elif prep.cov.kind == "hac":
+            ar_note = "not available with Newey-West errors"
+        else:
+            try:
+                ar_set = anderson_rubin_set(
+                    cols["_y"], endog_arr[:, 0], instr_arr, exog_arr, prep.cov.kind,
+                    clusters=prep.cov.clusters, level=study.inference.level,
+                    df_absorbed=prep.cov.df_penalty)
+                ar_note = ""
+            except EstimationError as exc:
+                ar_note = str(exc)
     return DemandResult(
         fit=fit,
         form=spec.form,
@@ -166,6 +199,9 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
         elasticity=elasticity,
         wrong_sign_share=float(np.mean(slope >= 0)),
         first_stage=first,
+        strength=strength,
+        ar_set=ar_set,
+        ar_note=ar_note,
         prepared=prep,
         instruments=tuple(instr),
     )

@@ -1,9 +1,13 @@
 """Instrument diagnostics for one IV stage, in the study's covariance convention.
 
-This module turns the arrays of a stage into the first-stage table reported
-for it: per endogenous regressor, the F statistic on the excluded
-instruments (Wald / k under robust, cluster or HAC errors; the classic F under
-homoskedastic errors) and the partial R-squared.
+This module turns the arrays of a stage into what is reported for it: per
+endogenous regressor the first-stage F on the excluded instruments, the
+partial R-squared and, with several endogenous regressors, the conditional F
+of Sanderson & Windmeijer (2016); for the stage as a whole the effective F of
+Montiel Olea & Pflueger (2013) when there is one endogenous regressor, and a
+plain-language reading against the Stock & Yogo (2005) critical values.  The
+statistics come from :mod:`conduct.weakiv`; Newey-West (HAC) studies get the
+first-stage Wald/k with the HAC covariance of :mod:`conduct.iv`.
 """
 
 from __future__ import annotations
@@ -14,8 +18,10 @@ import numpy as np
 from scipy import stats
 
 from conduct.iv import CovSpec, cluster_cov
+from conduct.stockyogo import strength_reading
+from conduct.weakiv import effective_f, first_stage
 
-__all__ = ["FirstStage", "first_stage_table"]
+__all__ = ["FirstStage", "Strength", "first_stage_table", "stage_strength"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -29,13 +35,15 @@ class FirstStage:
     f : float
         F statistic on the excluded instruments (Wald / k for non-homoskedastic errors).
     p : float
-        p-value of F against F(k, n - k_all - a).
+        p-value of F.
     df : tuple of int
-        Numerator and denominator degrees of freedom.
+        Reference degrees of freedom of F.
     partial_r2 : float
         Partial R-squared of the excluded instruments.
     convention : str
         How F was computed.
+    conditional_f : float or None
+        Sanderson-Windmeijer conditional F (several endogenous regressors only).
     """
 
     name: str
@@ -44,6 +52,33 @@ class FirstStage:
     df: tuple[int, int]
     partial_r2: float
     convention: str
+    conditional_f: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Strength:
+    """Instrument strength of a stage as a whole.
+
+    Attributes
+    ----------
+    effective_f : float or None
+        Montiel Olea-Pflueger effective F (one endogenous regressor only).
+    effective_critical : float or None
+        Its simplified critical value for a 10% worst-case bias at 5% size.
+    weakest_f : float
+        The smallest (conditional, when several) first-stage F.
+    reading : str
+        Plain-language reading against the Stock-Yogo critical values.
+    """
+
+    effective_f: float | None
+    effective_critical: float | None
+    weakest_f: float
+    reading: str
+
+
+def _weakiv_cov(cov: CovSpec) -> str | None:
+    return cov.kind if cov.kind in ("homoskedastic", "robust", "cluster") else None
 
 
 def first_stage_table(
@@ -71,21 +106,86 @@ def first_stage_table(
     Returns
     -------
     tuple of FirstStage
-
-    Notes
-    -----
-    With ``X = [W, Z]`` and OLS of each endogenous column on X, the statistic is
-    ``F = b_Z' V_Z^{-1} b_Z / k`` where ``V_Z`` is the block of the chosen
-    covariance for the excluded instruments, using the same small-sample
-    conventions as :mod:`conduct.iv`.
     """
+    kind = _weakiv_cov(cov)
+    if kind is None:
+        return _hac_table(endog, instruments, exog, names, cov)
+    fs = first_stage(endog, instruments, exog, kind, clusters=cov.clusters,
+                     df_absorbed=cov.df_penalty)
+    out = []
+    for j, name in enumerate(names):
+        test = fs.f[j]
+        cond = fs.conditional_f[j].stat if fs.conditional_f is not None else None
+        out.append(FirstStage(
+            name=name, f=float(test.stat), p=float(test.pvalue),
+            df=(int(test.df[0]), int(test.df[1])), partial_r2=float(fs.partial_r2[j]),
+            convention=fs.convention, conditional_f=None if cond is None else float(cond),
+        ))
+    return tuple(out)
+
+
+def stage_strength(
+    endog: np.ndarray,
+    instruments: np.ndarray,
+    exog: np.ndarray,
+    table: tuple[FirstStage, ...],
+    cov: CovSpec,
+    coefficient: str,
+) -> Strength:
+    """Effective F (one endogenous regressor) and a Stock-Yogo reading for a stage.
+
+    Parameters
+    ----------
+    endog, instruments, exog : numpy.ndarray
+        As for :func:`first_stage_table`.
+    table : tuple of FirstStage
+        The stage's first-stage table.
+    cov : CovSpec
+    coefficient : str
+        How to name the coefficient in the reading.
+
+    Returns
+    -------
+    Strength
+    """
+    p, k = endog.shape[1], instruments.shape[1]
+    kind = _weakiv_cov(cov)
+    eff = crit = None
+    if p == 1 and kind is not None:
+        e = effective_f(endog, instruments, exog, kind, clusters=cov.clusters,
+                        df_absorbed=cov.df_penalty)
+        eff, crit = float(e.f_eff), float(e.critical_value)
+    if p == 1:
+        weakest = eff if eff is not None else table[0].f
+        reading = strength_reading(weakest, 1, k, coefficient=coefficient,
+                                   robust=cov.kind != "homoskedastic")
+    else:
+        conds = [t.conditional_f if t.conditional_f is not None else t.f for t in table]
+        weakest = float(min(conds))
+        # Sanderson & Windmeijer (2016): compare the conditional F with the
+        # one-regressor tables at k - p + 1 instruments.
+        reading = strength_reading(weakest, 1, k - p + 1, coefficient=coefficient,
+                                   robust=cov.kind != "homoskedastic")
+        reading = (f"Weakest conditional first-stage F {weakest:.1f} (Sanderson-Windmeijer), "
+                   f"read against the one-regressor tables with {k - p + 1} instruments: "
+                   + reading)
+    if eff is not None and crit is not None:
+        verdict = "above" if eff >= crit else "below"
+        reading += (f" Effective F (Montiel Olea-Pflueger) {eff:.1f} is {verdict} its "
+                    f"conservative 10%-bias critical value {crit:.1f}.")
+    return Strength(effective_f=eff, effective_critical=crit, weakest_f=float(weakest),
+                    reading=reading)
+
+
+def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
+               names: tuple[str, ...], cov: CovSpec) -> tuple[FirstStage, ...]:
+    """First-stage Wald/k with the Newey-West covariance of :mod:`conduct.iv`."""
     n, k = instruments.shape
     x = np.column_stack([exog, instruments])
     kx = x.shape[1]
     xtx_inv = np.linalg.inv(x.T @ x)
     coef = xtx_inv @ x.T @ endog
     resid = endog - x @ coef
-    # partial out exog for partial R2
     if exog.shape[1]:
         pz = instruments - exog @ np.linalg.lstsq(exog, instruments, rcond=None)[0]
         pe = endog - exog @ np.linalg.lstsq(exog, endog, rcond=None)[0]
@@ -94,19 +194,14 @@ def first_stage_table(
     dof = n - kx - cov.df_penalty
     out = []
     for j, name in enumerate(names):
-        e = resid[:, j]
+        psi = (x * resid[:, j][:, None]) @ (n * xtx_inv)
+        v = cluster_cov(psi, cov, kx)[-k:, -k:]
         b = coef[-k:, j]
-        if cov.kind == "homoskedastic":
-            v = (e @ e / dof) * xtx_inv
-            conv = "classic F (homoskedastic)"
-        else:
-            psi = (x * e[:, None]) @ (n * xtx_inv)
-            v = cluster_cov(psi, cov, kx)
-            conv = f"Wald/k with {cov.kind} covariance"
-        vz = v[-k:, -k:]
-        f = float(b @ np.linalg.solve(vz, b) / k)
+        f = float(b @ np.linalg.solve(v, b) / k)
         fitted = pz @ np.linalg.lstsq(pz, pe[:, j], rcond=None)[0]
         r2 = float(fitted @ fitted / (pe[:, j] @ pe[:, j]))
         out.append(FirstStage(name=name, f=f, p=float(stats.f.sf(f, k, dof)), df=(k, dof),
-                              partial_r2=r2, convention=conv))
+                              partial_r2=r2,
+                              convention=f"Wald/k with Newey-West ({cov.lags(n)} lags) "
+                                         f"covariance, n/({dof}) factor"))
     return tuple(out)

@@ -93,6 +93,8 @@ class IVFit:
         choice) and its p-value, when over-identified.
     j_df : int
         Degrees of freedom of J (instruments minus endogenous regressors).
+    j_convention : str
+        Which form of the over-identification statistic ``j_stat`` is.
     kappa : float
         k-class parameter (1 for 2SLS, the LIML eigenvalue for LIML).
     """
@@ -111,6 +113,7 @@ class IVFit:
     j_p: float | None
     j_df: int
     kappa: float
+    j_convention: str = ""
 
     @property
     def se(self) -> np.ndarray:
@@ -122,8 +125,27 @@ class IVFit:
         return float(self.params[self.names.index(name)])
 
 
-def convention_text(cov: CovSpec, n: int, k: int) -> str:
+_ESTIMATOR_NOTE = {
+    "2sls": "",
+    "liml": "; LIML bread (X'(I - kappa M_Z)X)^-1 with the meat from the 2SLS-form "
+            "fitted values",
+    "gmm": "; two-step efficient GMM, moment covariance at the second-step residuals",
+}
+
+
+def _j_convention(cov: CovSpec) -> str:
+    if cov.kind == "homoskedastic":
+        return "Sargan n R^2 form (homoskedastic weight), chi-square"
+    return ("Hansen J at two-step GMM with the first-step (2SLS-residual) "
+            f"{cov.kind} weight, chi-square")
+
+
+def convention_text(cov: CovSpec, n: int, k: int, estimator: str = "2sls") -> str:
     """Describe the small-sample convention of a covariance choice."""
+    return _convention_core(cov, n, k) + _ESTIMATOR_NOTE.get(estimator, "")
+
+
+def _convention_core(cov: CovSpec, n: int, k: int) -> str:
     a = cov.df_penalty
     dof = f"n-k-a = {n}-{k}-{a}"
     if cov.kind == "homoskedastic":
@@ -224,6 +246,7 @@ def fit_iv(
     estimator: Literal["2sls", "liml", "gmm"] = "2sls",
     cov: CovSpec,
     overid: bool = True,
+    instrument_names: tuple[str, ...] | None = None,
 ) -> IVFit:
     """Fit a linear IV regression through linearmodels.
 
@@ -244,6 +267,8 @@ def fit_iv(
     overid : bool
         Compute Hansen's J when over-identified (False skips it, e.g. in bootstrap
         replicates).
+    instrument_names : tuple of str or None
+        Names of the excluded instruments, for messages.
 
     Returns
     -------
@@ -268,7 +293,8 @@ def fit_iv(
     x = np.column_stack([exog, endog])
     z = np.column_stack([exog, instruments])
     _check_rank(x, names, "regressors")
-    _check_rank(z, names[:kx] + tuple(f"instrument {i + 1}" for i in range(kz)), "instruments")
+    inames = instrument_names or tuple(f"instrument {i + 1}" for i in range(kz))
+    _check_rank(z, names[:kx] + tuple(inames), "instruments")
     lm_cov = _LM_COV[cov.kind]
     kwargs = _lm_kwargs(cov, n)
     model_cls = {"2sls": IV2SLS, "liml": IVLIML}.get(estimator)
@@ -307,11 +333,12 @@ def fit_iv(
         k=k,
         estimator=estimator,
         cov_spec=cov,
-        convention=convention_text(cov, n, k),
+        convention=convention_text(cov, n, k, estimator),
         j_stat=j_stat,
         j_p=j_p,
         j_df=kz - ke,
         kappa=kappa,
+        j_convention=_j_convention(cov) if j_stat is not None else "",
     )
 
 

@@ -93,6 +93,11 @@ def _warnings(panel: Panel, ident: Identification, demand: DemandResult,
             "observations; those rows get no markup regressor and are left out of the supply "
             "relation."
         )
+    if demand.fit.cov_spec.kind == "robust" and "market" in study.demand.effects:
+        out.append(
+            "Heteroskedasticity-robust errors with market effects are not consistent when "
+            "markets have few periods (Stock & Watson 2008); prefer errors = \"cluster\"."
+        )
     if demand.fit.cov_spec.kind == "cluster":
         g = panel.description.markets
         if g < 20:

@@ -75,11 +75,24 @@ def build_summary(res: Results) -> dict[str, Any]:
         "wrong_slope_share": dem.wrong_sign_share,
         "first_stage": {
             fs.name: {"f": fs.f, "p": fs.p, "df": list(fs.df), "partial_r2": fs.partial_r2,
-                      "convention": fs.convention}
+                      "conditional_f": fs.conditional_f, "convention": fs.convention}
             for fs in dem.first_stage
         },
+        "instrument_strength": (
+            {"effective_f": dem.strength.effective_f,
+             "effective_f_critical": dem.strength.effective_critical,
+             "weakest_f": dem.strength.weakest_f, "reading": dem.strength.reading}
+            if dem.strength is not None else None
+        ),
+        "ar_set": (
+            {"intervals": [list(iv) for iv in dem.ar_set.intervals], "kind": dem.ar_set.kind,
+             "level": dem.ar_set.level, "reading": dem.ar_set.describe(dem.price_terms[0]),
+             "convention": dem.ar_set.convention}
+            if dem.ar_set is not None else {"note": dem.ar_note}
+        ),
         "hansen_j": (
-            {"stat": dem.fit.j_stat, "p": dem.fit.j_p, "df": dem.fit.j_df}
+            {"stat": dem.fit.j_stat, "p": dem.fit.j_p, "df": dem.fit.j_df,
+             "convention": dem.fit.j_convention}
             if dem.fit.j_stat is not None else None
         ),
         "instruments": list(dem.instruments),
@@ -127,6 +140,12 @@ def build_summary(res: Results) -> dict[str, Any]:
                 for fs in s.first_stage
             },
             "instruments": list(s.instruments),
+            "instrument_strength": (
+                {"effective_f": s.strength.effective_f,
+                 "effective_f_critical": s.strength.effective_critical,
+                 "weakest_f": s.strength.weakest_f, "reading": s.strength.reading}
+                if s.strength is not None else None
+            ),
             "bootstrap": (
                 {"replications": res.bootstrap.replications, "failures": res.bootstrap.failures,
                  "se": res.bootstrap.se, "ci": list(res.bootstrap.ci),

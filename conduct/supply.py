@@ -27,7 +27,7 @@ from scipy import stats
 
 from conduct.demand import DemandResult
 from conduct.design import Prepared, codes, prepare
-from conduct.diagnostics import FirstStage, first_stage_table
+from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
 from conduct.iv import CovSpec, IVFit, cluster_cov, fit_iv
@@ -96,6 +96,8 @@ class SupplyResult:
     h : numpy.ndarray or None
         (n,) Herfindahl index (or 1/N) per row when available.
     first_stage : tuple of FirstStage
+    strength : Strength or None
+        Effective F / Stock-Yogo reading for the supply stage.
     instruments : tuple of str
     prepared : Prepared
     """
@@ -114,6 +116,7 @@ class SupplyResult:
     qstar: np.ndarray
     h: np.ndarray | None
     first_stage: tuple[FirstStage, ...]
+    strength: Strength | None
     instruments: tuple[str, ...]
     prepared: Prepared
 
@@ -213,10 +216,6 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
     i_theta = names.index(QSTAR)
     x = np.column_stack([exog, endog])
     z = np.column_stack([exog, instr])
-    # A = (G'WG)^{-1} G'W for 2SLS, shared by every candidate
-    g = z.T @ x / n
-    w = np.linalg.inv(z.T @ z / n)
-    a_mat = np.linalg.solve(g.T @ w @ g, g.T @ w)
     # demand influence on the demand sample (all panel rows), mean-normalised over n_all
     psi_d = demand.fit.influence
     # supply rows in the demand sample
@@ -235,7 +234,11 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
         return cluster_cov(psi, spec, fit.k)
 
     main = fit_iv(cols["_p"], exog, endog, instr, names, estimator="2sls", cov=prep.cov,
-                  overid=with_tests)
+                  overid=with_tests, instrument_names=instr_names)
+    # A = (G'WG)^{-1} G'W for 2SLS, shared by every candidate (after fit_iv's rank checks)
+    g = z.T @ x / n
+    w = np.linalg.inv(z.T @ z / n)
+    a_mat = np.linalg.solve(g.T @ w @ g, g.T @ w)
     cov = sequential(main, np.zeros(n))
     theta = float(main.params[i_theta])
     se = float(np.sqrt(cov[i_theta, i_theta]))
@@ -261,9 +264,11 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
     bench = float(np.sum(h * qstar) / np.sum(qstar)) if h is not None else None
     first = (first_stage_table(endog, instr, exog, tuple(endog_names), prep.cov)
              if with_tests else ())
+    strength = (stage_strength(endog, instr, exog, first, prep.cov, "theta")
+                if with_tests else None)
     return SupplyResult(
         fit=main, cov=cov, theta=theta, se=se, se_naive=float(main.se[i_theta]),
         ci=(theta - zc * se, theta + zc * se), tests=tuple(tests), verdict=verdict,
         not_rejected=kept, cournot_benchmark=bench, rows=rows, qstar=qstar_all, h=h_all,
-        first_stage=first, instruments=instr_names, prepared=prep,
+        first_stage=first, strength=strength, instruments=instr_names, prepared=prep,
     )
