@@ -86,6 +86,11 @@ def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
             state = "rejected" if t["rejected"] else "not rejected"
             rows.append((f"test {name}", f"Wald {t['stat']:.2f}, p {t['p']:.4f}, {state}"))
         rows.append(("verdict", c["verdict"]))
+        if c.get("ar_set"):
+            rows.append(("AR set", c["ar_set"]["reading"]))
+        for key in ("regimes", "groups", "break"):
+            if c.get(key):
+                rows.append((key, c[key]["reading"]))
         costs = summary["costs"]
         rows.append(("lerner", f"mean {_fmt(costs['lerner_mean'])}; negative costs "
                                f"{costs['negative_cost_share']:.1%} of rows"))

@@ -94,11 +94,21 @@ def check_identification(study: Study) -> Identification:
             "ones under [supply] instruments."
         )
     if d.form == "log" and not d.rotators:
+        if not s.regimes:
+            raise IdentificationError(
+                f"Study file {study.path}: with log-linear demand and no rotator, theta is "
+                "identified only by the functional form of demand: the markup Q/|dQ/dP| = "
+                "P/|elasticity| moves one-for-one with price, so market power and the level "
+                "of marginal cost cannot be told apart. Remedies: add a rotator under [demand] "
+                "rotators, or name a column of known conduct regimes under [supply] regimes "
+                "(conduct is then compared across regimes, as in Porter 1983)."
+            )
         warnings.append(
-            "Log-linear demand without rotators: theta is identified only through the "
-            "functional form of demand, not by a demand rotation; treat it with caution."
+            "Log-linear demand without rotators: theta rests on the functional form of demand "
+            "and on the known regimes; read the per-regime thetas and their difference, not "
+            "the pooled level."
         )
-        reason = "identified through the log-linear functional form only"
+        reason = "identified through the log-linear functional form and the known regimes"
     elif d.rotators:
         reason = (f"identified by the demand rotation through {', '.join(d.rotators)} "
                   "(Bresnahan 1982; Lau 1982)")

@@ -30,7 +30,7 @@ from linearmodels.iv import IV2SLS, IVGMM, IVLIML
 
 from conduct.errors import EstimationError
 
-__all__ = ["CovSpec", "IVFit", "cluster_cov", "fit_iv", "influence_2sls"]
+__all__ = ["CovSpec", "IVFit", "check_design", "cluster_cov", "fit_iv", "influence_2sls"]
 
 CovType = Literal["homoskedastic", "robust", "cluster", "hac"]
 _LM_COV = {"homoskedastic": "unadjusted", "robust": "robust", "cluster": "clustered",
@@ -290,11 +290,7 @@ def fit_iv(
     if n - k - cov.df_penalty <= 0:
         raise EstimationError(f"Too few observations ({n}) for {k} coefficients plus "
                               f"{cov.df_penalty} absorbed effects.")
-    x = np.column_stack([exog, endog])
-    z = np.column_stack([exog, instruments])
-    _check_rank(x, names, "regressors")
-    inames = instrument_names or tuple(f"instrument {i + 1}" for i in range(kz))
-    _check_rank(z, names[:kx] + tuple(inames), "instruments")
+    x, z = check_design(exog, endog, instruments, names, instrument_names)
     lm_cov = _LM_COV[cov.kind]
     kwargs = _lm_kwargs(cov, n)
     model_cls = {"2sls": IV2SLS, "liml": IVLIML}.get(estimator)
@@ -372,6 +368,39 @@ def _gmm(y: np.ndarray, ex: np.ndarray | None, endog: np.ndarray, instr: np.ndar
     return IVGMM(y, ex, endog, instr, weight_type="robust")
 
 
+def check_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
+                 names: tuple[str, ...], instrument_names: tuple[str, ...] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Refuse regressors or instruments without variation or with collinear columns.
+
+    Parameters
+    ----------
+    exog, endog, instruments : numpy.ndarray
+        (n, kx), (n, ke), (n, kz) design blocks.
+    names : tuple of str
+        Names of the exog then endog columns.
+    instrument_names : tuple of str or None
+        Names of the excluded instruments.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        The regressor matrix ``[exog, endog]`` and instrument matrix ``[exog, instruments]``.
+
+    Raises
+    ------
+    EstimationError
+        Naming the column that has no variation, or the set that is collinear.
+    """
+    kx, kz = exog.shape[1], instruments.shape[1]
+    x = np.column_stack([exog, endog])
+    z = np.column_stack([exog, instruments])
+    _check_rank(x, names, "regressors")
+    inames = instrument_names or tuple(f"instrument {i + 1}" for i in range(kz))
+    _check_rank(z, names[:kx] + tuple(inames), "instruments")
+    return x, z
+
+
 def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
     if a.shape[1] == 0:
         return
@@ -383,7 +412,8 @@ def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
             f"The {what} include '{label}', which has no variation left after the fixed "
             "effects are removed; drop it or change the effects."
         )
-    s = np.linalg.svd(a / scale, compute_uv=False)
+    # QR first: the singular values of R equal those of the (n, k) matrix, at O(n k^2) cost
+    s = np.linalg.svd(np.linalg.qr(a / scale, mode="r"), compute_uv=False)
     cond = s[0] / s[-1] if s[-1] > 0 else np.inf
     if cond > 1e10:
         raise EstimationError(

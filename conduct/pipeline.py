@@ -14,10 +14,12 @@ from pathlib import Path
 import numpy as np
 
 from conduct.bootstrap import BootstrapResult, cluster_bootstrap
+from conduct.breaks import BreakResult, RollingResult, rolling_theta, sup_wald_break
 from conduct.demand import DemandResult, estimate_demand
 from conduct.derived import Derived, derive
 from conduct.identify import Identification, check_identification
 from conduct.panel import Panel, load_panel
+from conduct.regimes import SplitResult, theta_by
 from conduct.study import Study, load_study
 from conduct.supply import SupplyResult, estimate_supply
 from conduct.thetaset import ThetaSet, theta_ar_set
@@ -40,6 +42,12 @@ class Results:
     derived : Derived
     theta_set : ThetaSet or None
         Anderson-Rubin confidence set for theta.
+    regimes, groups : SplitResult or None
+        Theta per known regime / per group of markets, when the study asks.
+    breaks : BreakResult or None
+        Sup-Wald test for a break at an unknown date, when the study asks.
+    rolling : RollingResult or None
+        Rolling-window theta, when the study asks.
     bootstrap : BootstrapResult or None
         Cluster bootstrap of theta when ``[inference] bootstrap`` > 0.
     warnings : tuple of str
@@ -52,6 +60,10 @@ class Results:
     supply: SupplyResult | None
     derived: Derived
     theta_set: ThetaSet | None
+    regimes: SplitResult | None
+    groups: SplitResult | None
+    breaks: BreakResult | None
+    rolling: RollingResult | None
     bootstrap: BootstrapResult | None
     warnings: tuple[str, ...]
 
@@ -141,6 +153,16 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
     theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
+    regimes = groups = breaks = rolling = None
+    if supply is not None and st.supply is not None:
+        if st.supply.regimes:
+            regimes = theta_by(panel, st, demand, st.supply.regimes, "regime")
+        if st.supply.groups:
+            groups = theta_by(panel, st, demand, st.supply.groups, "group")
+        if st.supply.break_test:
+            breaks = sup_wald_break(panel, st, demand)
+        if st.supply.rolling_window:
+            rolling = rolling_theta(panel, st, demand, st.supply.rolling_window)
     boot = None
     if supply is not None and st.inference.bootstrap > 0:
         boot = cluster_bootstrap(panel, st, replications=st.inference.bootstrap,
@@ -151,5 +173,6 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
                      "be estimated and were left out.",)
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
-        derived=derived, theta_set=theta_set, bootstrap=boot, warnings=warnings,
+        derived=derived, theta_set=theta_set, regimes=regimes, groups=groups, breaks=breaks,
+        rolling=rolling, bootstrap=boot, warnings=warnings,
     )

@@ -96,6 +96,8 @@ PRESETS: dict[str, SimulationSpec] = {
         market_names=REGION_NAMES,
         conduct="cournot",
         episodes=(_ROAD_SALT_EPISODE,),
+        break_test=True,
+        rolling_window=12,
         title="Winter road salt for highway authorities, 36 regions, 2013Q1-2024Q4 "
         "(invented data)",
         seed=1,
@@ -399,6 +401,8 @@ def study_toml(spec: SimulationSpec, panel_file: str) -> str:
         f"cost_slope = {'true' if spec.cost_slope > 0 else 'false'}",
         "instruments = []",
         'regimes = ""',
+        f"break_test = {'true' if spec.break_test else 'false'}",
+        f"rolling_window = {spec.rolling_window}",
         "",
         "[models]",
         'candidates = ["competitive", "cournot", "collusive"]',

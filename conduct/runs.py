@@ -26,9 +26,11 @@ import pandas as pd
 
 from conduct.errors import ConductError
 from conduct.pipeline import Results
+from conduct.report import write_outputs
 from conduct.summary import build_summary
+from conduct.tables import spreadsheet_safe
 
-__all__ = ["HISTORY_COLUMNS", "read_history", "safe_csv", "write_run"]
+__all__ = ["HISTORY_COLUMNS", "previous_summary", "read_history", "write_run"]
 
 _LABEL = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 HISTORY_COLUMNS = (
@@ -46,18 +48,6 @@ def _versions() -> dict[str, str]:
             out[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             out[name] = "not installed"
-    return out
-
-
-def safe_csv(frame: pd.DataFrame) -> pd.DataFrame:
-    """Neutralise text cells a spreadsheet would run as formulas (prefix with ')."""
-    out = frame.copy()
-    for col in out.columns:
-        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
-            out[col] = out[col].map(
-                lambda v: "'" + v if isinstance(v, str) and v[:1] in ("=", "+", "-", "@", "\t",
-                                                                      "\r") else v
-            )
     return out
 
 
@@ -125,18 +115,10 @@ def write_run(res: Results, *, label: str | None = None,
             "study_sha256": study_sha,
             "versions": _versions(),
         }
-        obs = safe_csv(res.derived.observations)
+        obs = spreadsheet_safe(res.derived.observations)
         obs.to_csv(tmp / "observations.csv", index=False, float_format="%.10g")
-        res.demand.coefficients().to_csv(tmp / "demand_coefficients.csv", float_format="%.10g")
-        if res.supply is not None:
-            res.supply.coefficients().to_csv(tmp / "supply_coefficients.csv",
-                                             float_format="%.10g")
-            tests = pd.DataFrame([
-                {"model": t.name, "theta": t.theta, "delta": t.delta, "se": t.se,
-                 "wald": t.stat, "p": t.p, "rejected": t.rejected}
-                for t in res.supply.tests
-            ])
-            tests.to_csv(tmp / "conduct_tests.csv", index=False, float_format="%.10g")
+        summary["run"] = {"id": base, "folder": None}
+        write_outputs(res, summary, tmp, previous=previous_summary(runs))
         (tmp / "study.toml").write_text(res.study.text, encoding="utf-8")
         (tmp / "run.log").write_text(res.summary() + "\n", encoding="utf-8")
         folder = _claim(runs, tmp, base, summary)
@@ -169,6 +151,18 @@ def _record(runs: Path, folder: Path, summary: dict[str, Any], label: str | None
     )
     with contextlib.closing(_connect(runs)) as con, con:
         con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(row))})", row)
+
+
+def previous_summary(runs: Path) -> dict[str, Any] | None:
+    """The ``summary.json`` of the latest recorded run, or None."""
+    hist = read_history(runs)
+    for folder in reversed(hist["folder"].tolist()):
+        path = runs / str(folder) / "summary.json"
+        try:
+            return dict(json.loads(path.read_text(encoding="utf-8")))
+        except (OSError, ValueError):
+            continue
+    return None
 
 
 def read_history(runs: Path) -> pd.DataFrame:

@@ -151,6 +151,8 @@ class SimulationSpec:
         Also write cost shifter x rotator columns (instruments for price x rotator).
     title : str
         Title of the study file.
+    break_test, rolling_window : bool, int
+        Written into the study file's [supply] table (break search, rolling theta).
     seed : int
         Seed of every random draw.
     """
@@ -188,6 +190,8 @@ class SimulationSpec:
     episodes: tuple[Episode, ...] = ()
     instrument_interactions: bool = False
     title: str = "Synthetic homogeneous-good markets (invented data)"
+    break_test: bool = False
+    rolling_window: int = 0
     seed: int = 1
 
 

@@ -9,6 +9,7 @@ Nothing in a study file is ever evaluated as code.
 
 from __future__ import annotations
 
+import difflib
 import math
 import tomllib
 from collections.abc import Callable, Mapping
@@ -83,12 +84,32 @@ class DemandSpec:
 
 @dataclass(frozen=True, slots=True)
 class SupplySpec:
-    """The supply relation P = MC + theta * Q*."""
+    """The supply relation P = MC + theta * Q*.
+
+    Attributes
+    ----------
+    cost_shifters : tuple of str
+    cost_slope : bool
+        Marginal cost may rise with quantity.
+    instruments : tuple of str
+        Extra excluded instruments.
+    regimes : str or None
+        Column of known regimes: a theta per regime and a test of equality.
+    groups : str or None
+        Column grouping markets: a theta per group, tests with multiple-testing control.
+    break_test : bool
+        Search for one break in theta at an unknown date (sup-Wald).
+    rolling_window : int
+        Periods per rolling window for monitoring theta (0: off).
+    """
 
     cost_shifters: tuple[str, ...] = ()
     cost_slope: bool = True
     instruments: tuple[str, ...] = ()
     regimes: str | None = None
+    groups: str | None = None
+    break_test: bool = False
+    rolling_window: int = 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -151,7 +172,8 @@ class Study:
             *self.demand.instruments,
         ]
         if self.supply is not None:
-            names += [*self.supply.cost_shifters, *self.supply.instruments, self.supply.regimes]
+            names += [*self.supply.cost_shifters, *self.supply.instruments, self.supply.regimes,
+                      self.supply.groups]
         out: list[str] = []
         for n in names:
             if n and n not in out:
@@ -161,8 +183,8 @@ class Study:
     def numeric_columns(self) -> tuple[str, ...]:
         """Columns that must hold numbers (everything except keys and regimes)."""
         keys = {self.panel.market, self.panel.period}
-        if self.supply is not None and self.supply.regimes:
-            keys.add(self.supply.regimes)
+        if self.supply is not None:
+            keys.update(c for c in (self.supply.regimes, self.supply.groups) if c)
         return tuple(c for c in self.columns() if c not in keys)
 
 
@@ -192,8 +214,13 @@ class _Reader:
         self.used.add(key)
         if key not in self.table:
             if default is _REQUIRED:
+                # a misspelt required key would otherwise hide behind "missing"
+                near = difflib.get_close_matches(key, [str(k) for k in self.table], n=1)
+                hint = (f" The table has an unknown key '{self._name(near[0])}' (did you mean "
+                        f"'{key}'?)." if near else "")
                 raise StudyFileError(
                     f"Study file {self.file}: required key '{self._name(key)}' is missing."
+                    + hint
                 )
             return default
         return conv(self.table[key], key)
@@ -221,7 +248,8 @@ class _Reader:
 
     def strings(self, value: Any, key: str) -> tuple[str, ...]:
         if isinstance(value, str):
-            value = [value]
+            raise self.fail(key, f"must be a list of names, e.g. [{_quote(value)}], got "
+                                 f"the bare string {value!r}.")
         if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
             raise self.fail(key, f"must be a list of column names (strings), got {value!r}.")
         out = tuple(v.strip() for v in value)
@@ -265,6 +293,10 @@ class _Reader:
             return tuple(one(v, key) for v in items)
 
         return conv
+
+
+def _quote(text: str) -> str:
+    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
 
 
 def _table(reader: _Reader, key: str, required: bool) -> dict[str, Any] | None:
@@ -364,8 +396,14 @@ def _supply(t: dict[str, Any], file: Path) -> SupplySpec:
         cost_slope=r.get("cost_slope", r.boolean, True),
         instruments=r.get("instruments", r.strings, ()),
         regimes=r.get("regimes", r.opt_string, None),
+        groups=r.get("groups", r.opt_string, None),
+        break_test=r.get("break_test", r.boolean, False),
+        rolling_window=r.get("rolling_window", r.integer, 0),
     )
     r.finish()
+    if spec.rolling_window < 0 or spec.rolling_window == 1:
+        raise r.fail("rolling_window", f"must be 0 (off) or a number of periods >= 2, got "
+                     f"{spec.rolling_window}.")
     return spec
 
 
@@ -443,6 +481,42 @@ def _output(t: dict[str, Any] | None, file: Path) -> OutputSpec:
     return spec
 
 
+def _check_roles(panel: PanelSpec, demand: DemandSpec, supply: SupplySpec | None,
+                 file: Path) -> None:
+    """Refuse a column used in two roles that cannot both hold."""
+    keys = {panel.market: "panel.market", panel.period: "panel.period",
+            panel.price: "panel.price", panel.quantity: "panel.quantity"}
+    lists = [("demand.shifters", demand.shifters), ("demand.rotators", demand.rotators),
+             ("demand.instruments", demand.instruments)]
+    if supply is not None:
+        lists += [("supply.cost_shifters", supply.cost_shifters),
+                  ("supply.instruments", supply.instruments)]
+    for where, cols in lists:
+        for col in cols:
+            if col in keys:
+                raise StudyFileError(
+                    f"Study file {file}: column '{col}' is {keys[col]} and cannot also be "
+                    f"listed in {where}; each role needs its own column."
+                )
+    pairs = [("demand.rotators", demand.rotators, "demand.shifters", demand.shifters)]
+    if supply is not None:
+        pairs += [
+            ("supply.instruments", supply.instruments, "supply.cost_shifters",
+             supply.cost_shifters),
+            ("supply.cost_shifters", supply.cost_shifters, "demand.shifters and "
+             "demand.rotators (the supply relation's excluded instruments)",
+             demand.shifters + demand.rotators),
+        ]
+    for where, cols, other, other_cols in pairs:
+        both = [c for c in cols if c in other_cols]
+        if both:
+            raise StudyFileError(
+                f"Study file {file}: {', '.join(repr(c) for c in both)} in {where} also "
+                f"appear(s) in {other}; a variable cannot be included in an equation and "
+                "excluded from it at once."
+            )
+
+
 def parse_study(text: str, path: Path) -> Study:
     """Parse and validate study-file text.
 
@@ -478,6 +552,7 @@ def parse_study(text: str, path: Path) -> Study:
     inference = _inference(_table(top, "inference", False), path)
     output = _output(_table(top, "output", False), path)
     top.finish()
+    _check_roles(panel, demand, supply, path)
     return Study(
         path=path,
         title=title,

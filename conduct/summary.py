@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from conduct.pipeline import Results
+from conduct.regimes import SplitResult
 
 __all__ = ["CAUTION", "build_summary", "clean"]
 
@@ -39,6 +40,22 @@ def clean(value: Any) -> Any:
     if isinstance(value, float) and not math.isfinite(value):
         return None
     return value
+
+
+def _split(split: SplitResult | None) -> dict[str, Any] | None:
+    if split is None:
+        return None
+    return {
+        "column": split.column,
+        "equality": {"stat": split.equality_stat, "df": split.equality_df,
+                     "p": split.equality_p},
+        "reading": split.reading(),
+        "thetas": [
+            {"label": g.label, "theta": g.theta, "se": g.se, "ci": list(g.ci), "rows": g.rows,
+             "p_competitive": g.p_competitive, "p_holm": g.p_holm, "p_bh": g.p_bh}
+            for g in split.groups
+        ],
+    }
 
 
 def build_summary(res: Results) -> dict[str, Any]:
@@ -140,6 +157,25 @@ def build_summary(res: Results) -> dict[str, Any]:
                 for fs in s.first_stage
             },
             "instruments": list(s.instruments),
+            "regimes": _split(res.regimes),
+            "groups": _split(res.groups),
+            "break": (
+                {"stat": res.breaks.stat, "p": res.breaks.p, "date": res.breaks.date,
+                 "critical": {f"{k:g}": v for k, v in res.breaks.critical.items()},
+                 "theta_before": res.breaks.theta_before, "theta_after": res.breaks.theta_after,
+                 "se_before": res.breaks.se_before, "se_after": res.breaks.se_after,
+                 "trimming": 0.15, "reading": res.breaks.reading(),
+                 "path": [{"date": d, "wald": w} for d, w in res.breaks.path]}
+                if res.breaks is not None else None
+            ),
+            "rolling": (
+                {"window": res.rolling.window,
+                 "windows": [{"start": a, "end": b, "theta": t, "se": e}
+                             for a, b, t, e in zip(res.rolling.starts, res.rolling.ends,
+                                                   res.rolling.theta, res.rolling.se,
+                                                   strict=True)]}
+                if res.rolling is not None else None
+            ),
             "instrument_strength": (
                 {"effective_f": s.strength.effective_f,
                  "effective_f_critical": s.strength.effective_critical,

@@ -30,7 +30,7 @@ from conduct.design import Prepared, codes, prepare
 from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
-from conduct.iv import CovSpec, IVFit, cluster_cov, fit_iv
+from conduct.iv import CovSpec, IVFit, check_design, cluster_cov, fit_iv
 from conduct.panel import MARKET, Panel
 from conduct.study import Candidate, Study
 
@@ -147,6 +147,195 @@ def _markup_h(c: Candidate, h: np.ndarray | None, n: int) -> np.ndarray | None:
     return h
 
 
+@dataclass(frozen=True)
+class SupplySystem:
+    """The supply relation's arrays, ready to be solved for any dependent variable.
+
+    Built once per specification; :meth:`solve` fits ``dependent`` on the
+    design by 2SLS and returns the fit with its sequential covariance.  With a
+    ``split``, Q* enters as one column per group (``Q*[label]``) and the
+    excluded instruments are interacted with the group indicators, so each
+    group gets its own theta.
+
+    Attributes
+    ----------
+    rows : numpy.ndarray
+        (n_s,) panel positions used (negative demand slope, inside ``subset``).
+    names : tuple of str
+        Regressor names (exogenous, then Q* columns, then Q when the cost slope is free).
+    theta_index : tuple of int
+        Positions of the Q* columns in ``names``.
+    labels : tuple of str
+        Group labels of the Q* columns (``("all",)`` without a split).
+    group : numpy.ndarray
+        (n_s,) group position of each row used.
+    """
+
+    rows: np.ndarray
+    names: tuple[str, ...]
+    theta_index: tuple[int, ...]
+    labels: tuple[str, ...]
+    group: np.ndarray
+    qstar: np.ndarray
+    dqstar: np.ndarray
+    h: np.ndarray | None
+    prepared: Prepared
+    exog: np.ndarray
+    endog: np.ndarray
+    instr: np.ndarray
+    endog_names: tuple[str, ...]
+    instr_names: tuple[str, ...]
+    a_mat: np.ndarray
+    z: np.ndarray
+    psi_demand: np.ndarray
+    n_all: int
+    full_cov: CovSpec
+
+    def solve(self, dependent: str, hvec: np.ndarray, *, overid: bool = False
+              ) -> tuple[IVFit, np.ndarray]:
+        """Fit ``dependent`` (a prepared column) and its sequential covariance.
+
+        Parameters
+        ----------
+        dependent : str
+            ``_p`` for price, or ``_dep:<model>`` for price minus a candidate's markup.
+        hvec : numpy.ndarray
+            (n_s,) the markup multiplier subtracted from price in ``dependent``.
+        overid : bool
+            Compute Hansen's J.
+
+        Returns
+        -------
+        (IVFit, numpy.ndarray)
+            The fit (naive covariance inside) and the (k, k) sequential covariance.
+        """
+        cols = self.prepared.columns
+        fit = fit_iv(cols[dependent], self.exog, self.endog, self.instr, self.names,
+                     estimator="2sls", cov=self.prepared.cov, overid=overid,
+                     instrument_names=self.instr_names)
+        deltas = fit.params[list(self.theta_index)][self.group]
+        n = len(self.rows)
+        g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
+        psi = np.zeros((self.n_all, fit.k))
+        psi[self.rows] += (self.n_all / n) * fit.influence
+        psi += self.psi_demand @ (self.a_mat @ g_alpha).T
+        return fit, cluster_cov(psi, self.full_cov, fit.k)
+
+
+def build_system(
+    panel: Panel,
+    study: Study,
+    demand: DemandResult,
+    *,
+    subset: np.ndarray | None = None,
+    split: tuple[np.ndarray, tuple[str, ...]] | None = None,
+    candidates: tuple[Candidate, ...] = (),
+) -> SupplySystem:
+    """Assemble the supply relation's design.
+
+    Parameters
+    ----------
+    panel, study, demand
+        The study and its fitted demand.
+    subset : numpy.ndarray or None
+        (n,) boolean mask of panel rows to use (e.g. a rolling window).
+    split : (numpy.ndarray, tuple of str) or None
+        Group code per panel row (0..G-1) and the group labels: theta per group.
+    candidates : tuple of Candidate
+        Candidates whose dependent variable ``P - h Q*`` is prepared as ``_dep:<name>``.
+
+    Returns
+    -------
+    SupplySystem
+    """
+    assert study.supply is not None
+    s = study.supply
+    f = panel.frame
+    n_all = len(f)
+    keep = demand.slope < 0
+    if subset is not None:
+        keep &= subset
+    rows = np.flatnonzero(keep)
+    if len(rows) < 10:
+        raise DataError(
+            f"The estimated demand slope is negative at only {len(rows)} of {n_all} rows"
+            + (" in the selected rows" if subset is not None else "")
+            + "; the supply relation cannot be estimated. Check the demand specification."
+        )
+    fs = f.iloc[rows].reset_index(drop=True)
+    p = fs[study.panel.price].to_numpy(dtype=float)
+    q = fs[study.panel.quantity].to_numpy(dtype=float)
+    slope = demand.slope[rows]
+    qstar = -q / slope
+    dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]  # (n_s, k_d)
+    h_all = benchmark_h(panel, study)
+    h = h_all[rows] if h_all is not None else None
+    if split is None:
+        group = np.zeros(len(rows), dtype=np.int64)
+        labels: tuple[str, ...] = ("all",)
+    else:
+        group = split[0][rows].astype(np.int64)
+        labels = split[1]
+    n_groups = len(labels)
+
+    base_instr = supply_instruments(study)
+    data: dict[str, np.ndarray] = {"_p": p, "Q": q}
+    for c in s.cost_shifters:
+        data[c] = fs[c].to_numpy(dtype=float)
+    raw: dict[str, np.ndarray] = {}
+    for name in base_instr:
+        if "*" in name and name not in fs.columns:
+            a, b = name.split("*", 1)
+            raw[name] = fs[a].to_numpy(dtype=float) * fs[b].to_numpy(dtype=float)
+        else:
+            raw[name] = fs[name].to_numpy(dtype=float)
+    if n_groups == 1:
+        qnames = [QSTAR]
+        data[QSTAR] = qstar
+        instr_names = tuple(base_instr)
+        data.update(raw)
+    else:
+        qnames, inames = [], []
+        for g, label in enumerate(labels):
+            ind = (group == g).astype(float)
+            qnames.append(f"{QSTAR}[{label}]")
+            data[qnames[-1]] = qstar * ind
+            for name in base_instr:
+                inames.append(f"{name}[{label}]")
+                data[inames[-1]] = raw[name] * ind
+        instr_names = tuple(inames)
+    for c in candidates:
+        hc = _markup_h(c, h, len(rows))
+        if hc is not None:
+            data[f"_dep:{c.name}"] = p - hc * qstar
+    prep = prepare(fs, data, study, stage="supply")
+    cols = prep.columns
+    n = len(rows)
+    exog_names = (["const"] if prep.constant else []) + list(s.cost_shifters)
+    exog = np.column_stack(
+        ([np.ones(n)] if prep.constant else []) + [cols[c] for c in s.cost_shifters]
+    ) if exog_names else np.zeros((n, 0))
+    endog_names = tuple(qnames) + (("Q",) if s.cost_slope else ())
+    endog = np.column_stack([cols[c] for c in endog_names])
+    instr = np.column_stack([cols[c] for c in instr_names])
+    names = tuple(exog_names) + endog_names
+    x, z = check_design(exog, endog, instr, names, instr_names)
+    gmat = z.T @ x / n
+    w = np.linalg.inv(z.T @ z / n)
+    a_mat = np.linalg.solve(gmat.T @ w @ gmat, gmat.T @ w)
+    cov_full = prep.cov
+    clusters_full = codes(f[MARKET].to_numpy()) if cov_full.clusters is not None else None
+    full_cov = CovSpec(kind=cov_full.kind, clusters=clusters_full, hac_lags=cov_full.hac_lags,
+                       df_penalty=cov_full.df_penalty)
+    return SupplySystem(
+        rows=rows, names=names, theta_index=tuple(names.index(c) for c in qnames),
+        labels=labels, group=group, qstar=qstar, dqstar=dqstar, h=h, prepared=prep,
+        exog=exog, endog=endog, instr=instr, endog_names=endog_names,
+        instr_names=instr_names, a_mat=a_mat, z=z, psi_demand=demand.fit.influence,
+        n_all=n_all, full_cov=full_cov,
+    )
+
+
 def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
                     with_tests: bool = True) -> SupplyResult:
     """Estimate theta and test each candidate model.
@@ -165,91 +354,22 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
     -------
     SupplyResult
     """
-    assert study.supply is not None
-    s = study.supply
-    f = panel.frame
-    n_all = len(f)
-    rows = np.flatnonzero(demand.slope < 0)
-    if len(rows) < 10:
-        raise DataError(
-            f"The estimated demand slope is negative at only {len(rows)} of {n_all} rows; "
-            "the supply relation cannot be estimated. Check the demand specification."
-        )
-    fs = f.iloc[rows].reset_index(drop=True)
-    p = fs[study.panel.price].to_numpy(dtype=float)
-    q = fs[study.panel.quantity].to_numpy(dtype=float)
-    slope = demand.slope[rows]
-    qstar = -q / slope
-    dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]  # (n_s, k_d)
-    qstar_all = np.full(n_all, np.nan)
-    qstar_all[rows] = qstar
-    h_all = benchmark_h(panel, study)
-    h = h_all[rows] if h_all is not None else None
-
-    instr_names = supply_instruments(study)
-    data: dict[str, np.ndarray] = {"_p": p, QSTAR: qstar, "Q": q}
-    for c in s.cost_shifters:
-        data[c] = fs[c].to_numpy(dtype=float)
-    for name in instr_names:
-        if "*" in name and name not in fs.columns:
-            a, b = name.split("*", 1)
-            data[name] = fs[a].to_numpy(dtype=float) * fs[b].to_numpy(dtype=float)
-        else:
-            data[name] = fs[name].to_numpy(dtype=float)
-    cands = [c for c in study.candidates if _markup_h(c, h, len(rows)) is not None]
-    if not with_tests:
-        cands = []
-    for c in cands:
-        hc = _markup_h(c, h, len(rows))
-        data[f"_dep:{c.name}"] = p - hc * qstar
-    prep = prepare(fs, data, study, stage="supply")
-    cols = prep.columns
-    n = len(rows)
-    exog_names = (["const"] if prep.constant else []) + list(s.cost_shifters)
-    exog = np.column_stack(
-        ([np.ones(n)] if prep.constant else []) + [cols[c] for c in s.cost_shifters]
-    ) if exog_names else np.zeros((n, 0))
-    endog_names = [QSTAR] + (["Q"] if s.cost_slope else [])
-    endog = np.column_stack([cols[c] for c in endog_names])
-    instr = np.column_stack([cols[c] for c in instr_names])
-    names = tuple(exog_names + endog_names)
-    i_theta = names.index(QSTAR)
-    x = np.column_stack([exog, endog])
-    z = np.column_stack([exog, instr])
-    # demand influence on the demand sample (all panel rows), mean-normalised over n_all
-    psi_d = demand.fit.influence
-    # supply rows in the demand sample
-    cov_full = prep.cov
-    clusters_full = codes(f[MARKET].to_numpy()) if cov_full.clusters is not None else None
+    cands = study.candidates if with_tests else ()
+    sys_ = build_system(panel, study, demand, candidates=cands)
+    n = len(sys_.rows)
     level = study.inference.level
-
-    def sequential(fit: IVFit, hvec: np.ndarray) -> np.ndarray:
-        delta = fit.params[i_theta]
-        g_alpha = -(z.T @ ((hvec + delta)[:, None] * dqstar)) / n  # (m, k_d)
-        psi = np.zeros((n_all, fit.k))
-        psi[rows] += (n_all / n) * fit.influence
-        psi += psi_d @ (a_mat @ g_alpha).T
-        spec = CovSpec(kind=cov_full.kind, clusters=clusters_full, hac_lags=cov_full.hac_lags,
-                       df_penalty=cov_full.df_penalty)
-        return cluster_cov(psi, spec, fit.k)
-
-    main = fit_iv(cols["_p"], exog, endog, instr, names, estimator="2sls", cov=prep.cov,
-                  overid=with_tests, instrument_names=instr_names)
-    # A = (G'WG)^{-1} G'W for 2SLS, shared by every candidate (after fit_iv's rank checks)
-    g = z.T @ x / n
-    w = np.linalg.inv(z.T @ z / n)
-    a_mat = np.linalg.solve(g.T @ w @ g, g.T @ w)
-    cov = sequential(main, np.zeros(n))
+    main, cov = sys_.solve("_p", np.zeros(n), overid=with_tests)
+    i_theta = sys_.theta_index[0]
     theta = float(main.params[i_theta])
     se = float(np.sqrt(cov[i_theta, i_theta]))
     zc = float(stats.norm.ppf(0.5 + level / 2))
     tests = []
+    h = sys_.h
     for c in cands:
         hc = _markup_h(c, h, n)
-        assert hc is not None
-        fit_c = fit_iv(cols[f"_dep:{c.name}"], exog, endog, instr, names, estimator="2sls",
-                       cov=prep.cov)
-        cov_c = sequential(fit_c, hc)
+        if hc is None:
+            continue
+        fit_c, cov_c = sys_.solve(f"_dep:{c.name}", hc)
         delta = float(fit_c.params[i_theta])
         se_c = float(np.sqrt(cov_c[i_theta, i_theta]))
         stat = (delta / se_c) ** 2
@@ -261,14 +381,17 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
         ))
     kept = tuple(t.name for t in tests if not t.rejected)
     verdict = kept[0] if len(kept) == 1 else "inconclusive"
-    bench = float(np.sum(h * qstar) / np.sum(qstar)) if h is not None else None
-    first = (first_stage_table(endog, instr, exog, tuple(endog_names), prep.cov)
-             if with_tests else ())
-    strength = (stage_strength(endog, instr, exog, first, prep.cov, "theta")
-                if with_tests else None)
+    bench = float(np.sum(h * sys_.qstar) / np.sum(sys_.qstar)) if h is not None else None
+    first = (first_stage_table(sys_.endog, sys_.instr, sys_.exog, sys_.endog_names,
+                               sys_.prepared.cov) if with_tests else ())
+    strength = (stage_strength(sys_.endog, sys_.instr, sys_.exog, first, sys_.prepared.cov,
+                               "theta") if with_tests else None)
+    qstar_all = np.full(sys_.n_all, np.nan)
+    qstar_all[sys_.rows] = sys_.qstar
     return SupplyResult(
         fit=main, cov=cov, theta=theta, se=se, se_naive=float(main.se[i_theta]),
         ci=(theta - zc * se, theta + zc * se), tests=tuple(tests), verdict=verdict,
-        not_rejected=kept, cournot_benchmark=bench, rows=rows, qstar=qstar_all, h=h_all,
-        first_stage=first, strength=strength, instruments=instr_names, prepared=prep,
+        not_rejected=kept, cournot_benchmark=bench, rows=sys_.rows, qstar=qstar_all,
+        h=benchmark_h(panel, study), first_stage=first, strength=strength,
+        instruments=sys_.instr_names, prepared=sys_.prepared,
     )

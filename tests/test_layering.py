@@ -13,10 +13,9 @@ PACKAGE = Path(__file__).resolve().parent.parent / "conduct"
 
 ORDER = [
     "errors", "progress", "study", "panel", "absorb", "iv", "weakiv", "stockyogo",
-    "diagnostics", "design", "demand", "identify", "supply", "menu_stats", "menu", "thetaset",
-    "bootstrap",
-    "derived", "pipeline", "summary", "figures", "tables", "report", "runs", "simulate",
-    "presets", "cli", "__init__",
+    "diagnostics", "design", "demand", "identify", "supply", "menu_stats", "menu",
+    "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "summary",
+    "figures", "tables", "report", "runs", "simulate", "presets", "cli", "__init__",
 ]
 
 
