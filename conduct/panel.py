@@ -172,21 +172,21 @@ def _read_csv(path: Path, what: str) -> pd.DataFrame:
 
 
 def _read_excel(path: Path, sheet: str | None, what: str) -> pd.DataFrame:
-    book = pd.ExcelFile(path)
-    names = [str(s) for s in book.sheet_names]
-    if sheet is None:
-        if len(names) > 1:
+    with pd.ExcelFile(path) as book:
+        names = [str(s) for s in book.sheet_names]
+        if sheet is None:
+            if len(names) > 1:
+                raise DataError(
+                    f"{what} {path} has {len(names)} sheets ({', '.join(names)}); "
+                    "name one with panel.sheet."
+                )
+            sheet = names[0]
+        if sheet not in names:
             raise DataError(
-                f"{what} {path} has {len(names)} sheets ({', '.join(names)}); "
-                "name one with panel.sheet."
+                f"{what} {path} has no sheet '{sheet}'{suggest(sheet, names)}; "
+                f"sheets: {', '.join(names)}."
             )
-        sheet = names[0]
-    if sheet not in names:
-        raise DataError(
-            f"{what} {path} has no sheet '{sheet}'{suggest(sheet, names)}; "
-            f"sheets: {', '.join(names)}."
-        )
-    return book.parse(sheet)
+        return pd.read_excel(book, sheet_name=sheet)
 
 
 def _file_row(i: int, suffix: str) -> int:
@@ -199,8 +199,12 @@ def _rows_text(rows: np.ndarray, limit: int = 5) -> str:
     return f"row{'s' if len(rows) > 1 else ''} {shown}{more}"
 
 
-def _parse_periods(values: pd.Series, col: str, path: Path) -> tuple[np.ndarray, np.ndarray, str]:
-    """Return (labels, integer calendar positions, kind) for a period column."""
+def _parse_periods(values: pd.Series, col: str, path: Path,
+                   file_rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, str]:
+    """Return (labels, integer calendar positions, kind) for a period column.
+
+    ``file_rows`` holds each value's row number in the file, for messages.
+    """
     if pd.api.types.is_bool_dtype(values):
         raise DataError(f"Data file {path}: period column '{col}' holds true/false values.")
     if pd.api.types.is_datetime64_any_dtype(values):
@@ -216,11 +220,15 @@ def _parse_periods(values: pd.Series, col: str, path: Path) -> tuple[np.ndarray,
             bad = np.flatnonzero(~np.isfinite(arr) | (arr != np.round(arr)))
             raise DataError(
                 f"Data file {path}: period column '{col}' has non-integer values at "
-                f"{_rows_text(bad + 2)}; periods must be integers, dates or labels like 2019Q3."
+                f"{_rows_text(file_rows[bad])}; periods must be integers, dates or labels like "
+                "2019Q3."
             )
         ints = arr.astype(np.int64)
         return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
     text = values.astype(str).str.strip()
+    if text.str.fullmatch(r"-?\d+").all():  # integers stored as text
+        ints = text.astype(np.int64).to_numpy()
+        return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
     q = text.str.extract(_QUARTER)
     if q.notna().all().all():
         years, qs = q[0].astype(int).to_numpy(), q[1].astype(int).to_numpy()
@@ -236,13 +244,18 @@ def _parse_periods(values: pd.Series, col: str, path: Path) -> tuple[np.ndarray,
     try:
         stamps = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601"))
     except (ValueError, TypeError):
-        bad_mask = q.isna().any(axis=1).to_numpy()
-        bad = np.flatnonzero(bad_mask)
-        example = text.iloc[int(bad[0])] if len(bad) else text.iloc[0]
+        # name the values that parse neither way; if every value parses on its own,
+        # the column mixes kinds: name the values that are not quarter labels
+        is_quarter = q.notna().all(axis=1).to_numpy()
+        is_date = pd.to_datetime(text, format="ISO8601", errors="coerce").notna().to_numpy()
+        bad = np.flatnonzero(~is_quarter & ~is_date)
+        if not len(bad):
+            bad = np.flatnonzero(~is_quarter)
+        example = text.iloc[int(bad[0])]
         raise DataError(
             f"Data file {path}: period column '{col}' has values that are not integers, "
             f"ISO dates (2019-07-01) or quarter labels (2019Q3), e.g. '{example}' at "
-            f"{_rows_text(bad + 2)}."
+            f"{_rows_text(file_rows[bad])}."
         ) from None
     return np.asarray(stamps.strftime("%Y-%m-%d"), dtype=object), _rank(stamps.asi8), "date"
 
@@ -264,7 +277,7 @@ def _check_columns(frame: pd.DataFrame, study: Study) -> None:
             )
 
 
-def _to_numeric(frame: pd.DataFrame, col: str, path: Path) -> pd.Series:
+def _to_numeric(frame: pd.DataFrame, col: str, path: Path, file_rows: np.ndarray) -> pd.Series:
     s = frame[col]
     if pd.api.types.is_bool_dtype(s):
         return s.astype(float)
@@ -280,7 +293,7 @@ def _to_numeric(frame: pd.DataFrame, col: str, path: Path) -> pd.Series:
                     "to plain numbers (e.g. 1234.5) first.")
         raise DataError(
             f"Data file {path}: column '{col}' must be numeric but has text such as "
-            f"'{example}' at {_rows_text(bad + 2)}.{hint}"
+            f"'{example}' at {_rows_text(file_rows[bad])}.{hint}"
         )
     return converted.astype(float)
 
@@ -316,7 +329,7 @@ def load_panel(study: Study) -> Panel:
 
     numeric = study.numeric_columns()
     for col in numeric:
-        frame[col] = _to_numeric(frame, col, path)
+        frame[col] = _to_numeric(frame, col, path, file_rows)
 
     # Missing values: refuse, or drop and count.
     miss = frame.isna()
@@ -375,7 +388,7 @@ def load_panel(study: Study) -> Panel:
                 f">= 1, but has {vals[bad[0]]:g} at {_rows_text(file_rows[bad])}."
             )
 
-    labels, t, kind = _parse_periods(frame[spec.period], spec.period, path)
+    labels, t, kind = _parse_periods(frame[spec.period], spec.period, path, file_rows)
     frame[PERIOD] = labels
     frame[TIME] = t
     if spec.market is None:
@@ -388,8 +401,9 @@ def load_panel(study: Study) -> Panel:
 
     dup = frame.duplicated([MARKET, TIME], keep=False).to_numpy()
     if dup.any():
-        first = np.flatnonzero(dup)
-        i = int(first[0])
+        i = int(np.flatnonzero(dup)[0])
+        first = np.flatnonzero(((frame[MARKET] == frame[MARKET].iloc[i])
+                                & (frame[TIME] == frame[TIME].iloc[i])).to_numpy())
         where = (f"market '{frame[MARKET].iloc[i]}', " if spec.market else "") + \
             f"period '{frame[PERIOD].iloc[i]}'"
         what = "(market, period) pair" if spec.market else "period"

@@ -19,6 +19,7 @@ import pytest
 
 import conduct
 from conduct.bootstrap import cluster_bootstrap
+from conduct.errors import StudyFileError
 from conduct.presets import write_study
 from conduct.simulate import SimulationSpec
 
@@ -57,13 +58,17 @@ def test_recovers_planted_conduct_small(tmp_path, conduct_name):
 @pytest.mark.slow
 @pytest.mark.parametrize("conduct_name", list(SETTINGS))
 def test_recovery_rates_large(tmp_path, conduct_name):
-    seeds = range(100, 140)
-    covered, right = 0, 0
-    for seed in seeds:
-        res, planted = _run(tmp_path, conduct_name, seed, size=40)
+    covered, right, n, seed = 0, 0, 0, 99
+    while n < 40:
+        seed += 1
+        try:
+            res, planted = _run(tmp_path, conduct_name, seed, size=40)
+        except StudyFileError:
+            # the simulator refuses draws with no interior equilibrium (e.g. seed 138)
+            continue
+        n += 1
         covered += res.supply.ci[0] <= planted <= res.supply.ci[1]
         right += res.supply.verdict == conduct_name
-    n = len(seeds)
     # coverage near 95%: 3 binomial sd below is 0.95 - 3 * 0.034
     assert covered / n >= 0.85
     assert right / n >= 0.8
