@@ -94,6 +94,8 @@ def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
         costs = summary["costs"]
         rows.append(("lerner", f"mean {_fmt(costs['lerner_mean'])}; negative costs "
                                f"{costs['negative_cost_share']:.1%} of rows"))
+    if d.get("changes_line"):
+        rows.append(("new data", d["changes_line"]))
     rows.append(("run folder", str(folder)))
     width = max(len(k) for k, _ in rows)
     lines = [f"{k:<{width}}  {v}" for k, v in rows]
@@ -105,23 +107,40 @@ def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
 
 
 def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from conduct.alerts import parse_alerts
     from conduct.pipeline import estimate
     from conduct.runs import write_run
+    from conduct.study import load_study
 
-    res = estimate(args.study, quiet=args.quiet or args.json)
-    folder, summary = write_run(res, label=args.label, argv=["conduct", *argv])
+    specs = parse_alerts(args.alert or [])
+    study = load_study(args.study)
+    if any(a.name == "break" for a in specs) and not (study.supply and study.supply.break_test):
+        raise ConductError(
+            f"--alert break needs the break test: set break_test = true under [supply] in "
+            f"{study.path}."
+        )
+    res = estimate(study, quiet=args.quiet or args.json)
+    folder, summary = write_run(res, label=args.label, argv=["conduct", *argv], alerts=specs)
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
     elif not args.quiet:
         print(_terminal_summary(summary, folder))
+    if summary.get("alerts"):
+        if args.quiet or args.json:
+            for line in summary["alerts"]:
+                print(line, file=sys.stderr)
+        return EXIT_ALERT
     return EXIT_OK
 
 
 def _cmd_history(args: argparse.Namespace) -> int:
-    from conduct.runs import read_history
+    from conduct.runs import ensure_history, read_history
     from conduct.study import load_study
 
     study = load_study(args.study)
+    warning = ensure_history(study.output.runs)
+    if warning:
+        print(_paragraph("warning: ", warning), file=sys.stderr)
     hist = read_history(study.output.runs)
     if args.json:
         print(json.dumps(hist.to_dict(orient="records"), indent=2, sort_keys=True,
@@ -130,9 +149,9 @@ def _cmd_history(args: argparse.Namespace) -> int:
     if hist.empty:
         print(f"no runs recorded yet in {study.output.runs}")
         return EXIT_OK
-    cols = ["run_id", "rows", "last_period", "theta", "ci_lo", "ci_hi", "verdict"]
+    cols = ["run_id", "rows", "last_period", "theta", "ci_lo", "ci_hi", "verdict", "break_stat"]
     table = hist[cols].copy()
-    for c in ("theta", "ci_lo", "ci_hi"):
+    for c in ("theta", "ci_lo", "ci_hi", "break_stat"):
         table[c] = table[c].map(lambda v: "-" if v is None or v != v else f"{v:.4f}")
     print(table.to_string(index=False))
     return EXIT_OK
@@ -161,6 +180,32 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from conduct.compare import compare_runs, comparison_figure
+    from conduct.study import load_study
+
+    study = load_study(args.study)
+    if len(args.runs) not in (0, 2):
+        raise ConductError("compare takes no run ids (the last two runs) or exactly two.")
+    a, b = (args.runs[0], args.runs[1]) if args.runs else (None, None)
+    comp = compare_runs(study.output.runs, a, b)
+    out_dir = study.output.runs / "comparisons"
+    out_dir.mkdir(exist_ok=True)
+    target = out_dir / f"{comp.a}_vs_{comp.b}.png"
+    n = 2
+    while target.exists():
+        target = out_dir / f"{comp.a}_vs_{comp.b}-{n}.png"
+        n += 1
+    comparison_figure(study.output.runs, comp).savefig(target, dpi=120)
+    doc = {**comp.document, "figure": str(target)}
+    if args.json:
+        print(json.dumps(doc, indent=2, sort_keys=True))
+    else:
+        print(comp.text())
+        print(f"  figure    {target}")
+    return EXIT_OK
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="conduct",
@@ -177,6 +222,9 @@ def _parser() -> argparse.ArgumentParser:
     e.add_argument("--json", action="store_true", help="print summary.json instead of a table")
     e.add_argument("--quiet", action="store_true", help="print nothing on success")
     e.add_argument("--label", help="run id to use instead of time and data hash")
+    e.add_argument("--alert", action="append", metavar="CONDITION",
+                   help="exit with code 3 (after writing the run) when a condition is met: "
+                        "verdict-change, break, theta-shift=X; repeatable")
     m = sub.add_parser("simulate", help="write a synthetic panel with known conduct, its "
                        "study file and the truth")
     m.add_argument("--out", type=Path, required=True, help="folder to write into")
@@ -193,6 +241,10 @@ def _parser() -> argparse.ArgumentParser:
                    help="panel file format")
     m.add_argument("--replace", action="store_true", help="overwrite files already in --out")
     m.add_argument("--quiet", action="store_true", help="print nothing on success")
+    cp = sub.add_parser("compare", help="what changed between two runs (default: last two)")
+    cp.add_argument("study", type=Path, help="study file (TOML)")
+    cp.add_argument("runs", nargs="*", metavar="RUN", help="two run ids, earlier first")
+    cp.add_argument("--json", action="store_true", help="print the comparison as JSON")
     h = sub.add_parser("history", help="one line per past run of a study")
     h.add_argument("study", type=Path, help="study file (TOML)")
     h.add_argument("--json", action="store_true", help="print the history as JSON")
@@ -223,6 +275,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "estimate": lambda a: _cmd_estimate(a, args_list),
         "history": _cmd_history,
         "simulate": _cmd_simulate,
+        "compare": _cmd_compare,
     }
     try:
         return handlers[args.command](args)

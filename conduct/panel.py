@@ -21,7 +21,10 @@ import pandas as pd
 from conduct.errors import DataError, suggest
 from conduct.study import Study
 
-__all__ = ["MARKET", "PERIOD", "TIME", "Panel", "PanelDescription", "load_panel", "read_table"]
+__all__ = [
+    "MARKET", "PERIOD", "TIME", "Panel", "PanelDescription", "load_panel", "read_table",
+    "row_fingerprints",
+]
 
 # Internal column names added to the validated frame.
 MARKET = "_market"  # market label as a string ("all" for a single time series)
@@ -448,3 +451,32 @@ def load_panel(study: Study) -> Panel:
         sha256=sha,
     )
     return Panel(frame=frame, description=desc, source_rows=file_rows)
+
+
+def row_fingerprints(panel: Panel, columns: tuple[str, ...]) -> pd.DataFrame:
+    """A short hash of each row's values, keyed by market and period.
+
+    Parameters
+    ----------
+    panel : Panel
+    columns : tuple of str
+        The study's data columns (values are hashed as text with 12 significant digits).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``market``, ``period`` and ``hash``; two runs' tables tell which
+        rows are new and which changed value (data revisions).
+    """
+    f = panel.frame
+    parts = []
+    for c in columns:
+        v = f[c]
+        if pd.api.types.is_float_dtype(v):
+            parts.append(v.map(lambda x: f"{x:.12g}"))
+        else:
+            parts.append(v.astype(str))
+    joined = pd.concat(parts, axis=1).agg("\x1f".join, axis=1) if parts else pd.Series("")
+    hashes = [hashlib.sha1(s.encode("utf-8")).hexdigest()[:16] for s in joined]
+    return pd.DataFrame({"market": f[MARKET].to_numpy(), "period": f[PERIOD].to_numpy(),
+                         "hash": hashes})

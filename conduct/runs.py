@@ -24,20 +24,26 @@ from typing import Any
 
 import pandas as pd
 
+from conduct.alerts import AlertSpec, evaluate_alerts
 from conduct.errors import ConductError
+from conduct.panel import row_fingerprints
 from conduct.pipeline import Results
 from conduct.report import write_outputs
 from conduct.summary import build_summary
 from conduct.tables import spreadsheet_safe
 
-__all__ = ["HISTORY_COLUMNS", "previous_summary", "read_history", "write_run"]
+__all__ = [
+    "HISTORY_COLUMNS", "data_changes", "ensure_history", "previous_summary", "read_history",
+    "rebuild_history", "write_run",
+]
 
 _LABEL = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 HISTORY_COLUMNS = (
     "run_id", "label", "created_utc", "study_sha256", "data_sha256", "rows", "markets",
     "first_period", "last_period", "theta", "ci_lo", "ci_hi", "verdict", "elasticity_mean",
-    "lerner_mean", "folder",
+    "lerner_mean", "break_stat", "alerts", "folder",
 )
+FINGERPRINTS = "data_rows.csv"
 _PACKAGES = ("conduct", "numpy", "pandas", "scipy", "statsmodels", "linearmodels")
 
 
@@ -71,8 +77,74 @@ def _claim(runs: Path, tmp: Path, base: str, summary: dict[str, Any]) -> Path:
     raise ConductError(f"Could not find a free run folder name for '{base}' in {runs}.")
 
 
+def data_changes(current: pd.DataFrame, previous: pd.DataFrame | None,
+                 previous_id: str | None) -> dict[str, Any] | None:
+    """What is new or revised in the data since the previous run.
+
+    Parameters
+    ----------
+    current, previous : pandas.DataFrame
+        Row fingerprints (market, period, hash) of this and the previous run.
+    previous_id : str or None
+
+    Returns
+    -------
+    dict or None
+        ``previous_run``, ``new_periods``, ``new_markets``, ``new_rows``,
+        ``revised_rows`` (same market and period, different values), a few
+        ``revised_examples`` and ``removed_rows``; None without a previous run.
+    """
+    if previous is None:
+        return None
+    prev = previous.astype(str)
+    cur = current.astype(str)
+    merged = cur.merge(prev, on=["market", "period"], how="outer", suffixes=("", "_prev"),
+                       indicator=True)
+    new = merged[merged["_merge"] == "left_only"]
+    gone = merged[merged["_merge"] == "right_only"]
+    both = merged[merged["_merge"] == "both"]
+    revised = both[both["hash"] != both["hash_prev"]]
+    return {
+        "previous_run": previous_id,
+        "new_periods": sorted(set(cur["period"]) - set(prev["period"])),
+        "new_markets": sorted(set(cur["market"]) - set(prev["market"])),
+        "new_rows": len(new),
+        "revised_rows": len(revised),
+        "revised_examples": [f"{m} {p}" for m, p in zip(revised["market"][:5],
+                                                         revised["period"][:5], strict=True)],
+        "removed_rows": len(gone),
+    }
+
+
+def _changes_line(ch: dict[str, Any] | None) -> str:
+    if ch is None:
+        return "first run of this study: nothing to compare with"
+    periods = ch["new_periods"]
+    what = (f"{len(periods)} new period(s) ({periods[0]} to {periods[-1]})" if periods
+            else "no new periods")
+    return (f"since {ch['previous_run']}: {what}, {len(ch['new_markets'])} new market(s), "
+            f"{ch['revised_rows']} revised row(s), {ch['removed_rows']} removed row(s)")
+
+
+def _previous(runs: Path) -> tuple[dict[str, Any] | None, pd.DataFrame | None, str | None]:
+    hist = read_history(runs)
+    for folder in reversed(hist["folder"].tolist()):
+        path = runs / str(folder)
+        try:
+            summary = dict(json.loads((path / "summary.json").read_text(encoding="utf-8")))
+        except (OSError, ValueError):
+            continue
+        try:
+            prints = pd.read_csv(path / FINGERPRINTS, dtype=str, keep_default_na=False)
+        except (OSError, ValueError):
+            prints = None
+        return summary, prints, str(folder)
+    return None, None, None
+
+
 def write_run(res: Results, *, label: str | None = None,
-              argv: Sequence[str] = ()) -> tuple[Path, dict[str, Any]]:
+              argv: Sequence[str] = (),
+              alerts: Sequence[AlertSpec] = ()) -> tuple[Path, dict[str, Any]]:
     """Write a new run folder for ``res`` and record it in the history.
 
     Parameters
@@ -82,6 +154,9 @@ def write_run(res: Results, *, label: str | None = None,
         Run id to use instead of the time-and-hash id.
     argv : sequence of str
         The command line, recorded for provenance.
+    alerts : sequence of AlertSpec
+        Conditions to check against the previous run; those met are listed in
+        ``summary["alerts"]`` and open the report.
 
     Returns
     -------
@@ -98,11 +173,14 @@ def write_run(res: Results, *, label: str | None = None,
         runs.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise ConductError(f"Cannot create the runs folder {runs}: {exc.strerror}.") from None
+    repaired = ensure_history(runs)
     now = dt.datetime.now(dt.UTC).replace(microsecond=0)
     data_sha = res.panel.description.sha256
     study_sha = hashlib.sha256(res.study.text.encode("utf-8")).hexdigest()
     base = label or f"{now:%Y%m%dT%H%M%SZ}-{data_sha[:8]}"
     summary = build_summary(res)
+    if repaired:
+        summary["warnings"].append(repaired)
     tmp = runs / f".incomplete-{base}-{os.getpid()}"
     tmp.mkdir()
     try:
@@ -117,8 +195,18 @@ def write_run(res: Results, *, label: str | None = None,
         }
         obs = spreadsheet_safe(res.derived.observations)
         obs.to_csv(tmp / "observations.csv", index=False, float_format="%.10g")
+        prints = row_fingerprints(res.panel, res.study.columns())
+        spreadsheet_safe(prints).to_csv(tmp / FINGERPRINTS, index=False)
+        prev_summary, prev_prints, prev_id = _previous(runs)
+        changes = data_changes(prints, prev_prints, prev_id)
+        summary["data"]["changes"] = changes
+        summary["data"]["changes_line"] = _changes_line(changes)
         summary["run"] = {"id": base, "folder": None}
-        write_outputs(res, summary, tmp, previous=previous_summary(runs))
+        met = evaluate_alerts(alerts, summary, prev_summary)
+        summary["alerts"] = met
+        if met:
+            summary["warnings"] = [*met, *summary["warnings"]]
+        write_outputs(res, summary, tmp, previous=prev_summary)
         (tmp / "study.toml").write_text(res.study.text, encoding="utf-8")
         (tmp / "run.log").write_text(res.summary() + "\n", encoding="utf-8")
         folder = _claim(runs, tmp, base, summary)
@@ -129,40 +217,109 @@ def write_run(res: Results, *, label: str | None = None,
     return folder, summary
 
 
-def _connect(runs: Path) -> sqlite3.Connection:
-    con = sqlite3.connect(runs / "history.sqlite", timeout=60)
+def _create(con: sqlite3.Connection) -> None:
     con.execute(
         "CREATE TABLE IF NOT EXISTS runs (" + ", ".join(
             f"{c} TEXT PRIMARY KEY" if c == "run_id" else c for c in HISTORY_COLUMNS) + ")"
     )
+
+
+def _history_row(folder_name: str, summary: dict[str, Any], label: str | None,
+                 created: str, study_sha: str) -> tuple[Any, ...]:
+    c = summary.get("conduct") or {}
+    costs = summary.get("costs") or {}
+    d = summary["data"]
+    ci = c.get("ci") or [None, None]
+    brk = c.get("break") or {}
+    return (
+        folder_name, label, created, study_sha, d["sha256"], d["rows"], d["markets"],
+        d["first_period"], d["last_period"], c.get("theta"), ci[0], ci[1], c.get("verdict"),
+        summary["demand"]["elasticity"]["mean"], costs.get("lerner_mean"), brk.get("stat"),
+        "; ".join(summary.get("alerts") or []) or None, folder_name,
+    )
+
+
+def _healthy(runs: Path) -> bool:
+    path = runs / "history.sqlite"
+    if not path.exists():
+        return not _run_folders(runs)
+    try:
+        with contextlib.closing(sqlite3.connect(path, timeout=60)) as con:
+            cols = [r[1] for r in con.execute("PRAGMA table_info(runs)")]
+            con.execute("SELECT count(*) FROM runs").fetchone()
+    except sqlite3.DatabaseError:
+        return False
+    return tuple(cols) == HISTORY_COLUMNS or not cols
+
+
+def _run_folders(runs: Path) -> list[Path]:
+    if not runs.is_dir():
+        return []
+    return sorted(p for p in runs.iterdir()
+                  if p.is_dir() and not p.name.startswith(".") and (p / "summary.json").exists())
+
+
+def rebuild_history(runs: Path) -> int:
+    """Rebuild ``history.sqlite`` from the run folders' ``summary.json`` files.
+
+    A damaged history is kept beside the new one as ``history.sqlite.damaged-<n>``;
+    nothing is silently emptied.
+
+    Returns
+    -------
+    int
+        Number of runs recorded.
+    """
+    path = runs / "history.sqlite"
+    if path.exists():
+        n = 1
+        while (runs / f"history.sqlite.damaged-{n}").exists():
+            n += 1
+        os.replace(path, runs / f"history.sqlite.damaged-{n}")
+    rows = []
+    for folder in _run_folders(runs):
+        try:
+            summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
+            prov = summary.get("provenance") or {}
+            rows.append(_history_row(folder.name, summary, None,
+                                     str(prov.get("created_utc", "")),
+                                     str(prov.get("study_sha256", ""))))
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+    tmp = runs / f".history-{os.getpid()}.sqlite"
+    with contextlib.closing(sqlite3.connect(tmp)) as con, con:
+        _create(con)
+        con.executemany(f"INSERT OR REPLACE INTO runs VALUES "
+                        f"({', '.join('?' * len(HISTORY_COLUMNS))})", rows)
+    os.replace(tmp, path)
+    return len(rows)
+
+
+def ensure_history(runs: Path) -> str | None:
+    """Check the history and rebuild it when missing or damaged; return a warning or None."""
+    if _healthy(runs):
+        return None
+    n = rebuild_history(runs)
+    return (f"The run history {runs / 'history.sqlite'} was missing or damaged; it was rebuilt "
+            f"from {n} run folder(s) (a damaged file is kept beside it).")
+
+
+def _connect(runs: Path) -> sqlite3.Connection:
+    con = sqlite3.connect(runs / "history.sqlite", timeout=60)
+    _create(con)
     return con
 
 
 def _record(runs: Path, folder: Path, summary: dict[str, Any], label: str | None,
             now: dt.datetime, study_sha: str) -> None:
-    c = summary.get("conduct") or {}
-    costs = summary.get("costs") or {}
-    d = summary["data"]
-    ci = c.get("ci") or [None, None]
-    row = (
-        folder.name, label, now.isoformat(), study_sha, d["sha256"], d["rows"], d["markets"],
-        d["first_period"], d["last_period"], c.get("theta"), ci[0], ci[1], c.get("verdict"),
-        summary["demand"]["elasticity"]["mean"], costs.get("lerner_mean"), folder.name,
-    )
+    row = _history_row(folder.name, summary, label, now.isoformat(), study_sha)
     with contextlib.closing(_connect(runs)) as con, con:
         con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(row))})", row)
 
 
 def previous_summary(runs: Path) -> dict[str, Any] | None:
     """The ``summary.json`` of the latest recorded run, or None."""
-    hist = read_history(runs)
-    for folder in reversed(hist["folder"].tolist()):
-        path = runs / str(folder) / "summary.json"
-        try:
-            return dict(json.loads(path.read_text(encoding="utf-8")))
-        except (OSError, ValueError):
-            continue
-    return None
+    return _previous(runs)[0]
 
 
 def read_history(runs: Path) -> pd.DataFrame:

@@ -15,7 +15,8 @@ ORDER = [
     "errors", "progress", "study", "panel", "absorb", "iv", "weakiv", "stockyogo",
     "diagnostics", "design", "demand", "identify", "supply", "menu_stats", "menu",
     "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "summary",
-    "figures", "tables", "report", "runs", "simulate", "presets", "cli", "__init__",
+    "alerts", "figures", "tables", "report", "runs", "compare", "simulate", "presets", "cli",
+    "__init__",
 ]
 
 
