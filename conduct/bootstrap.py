@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, replace
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -128,7 +129,7 @@ def cluster_bootstrap(
             bar.step()
         bar.close()
     else:
-        thetas = mapper(lambda r: one_replicate(panel, study, seed, r), range(replications))
+        thetas = mapper(partial(one_replicate, panel, study, seed), range(replications))
     arr = np.asarray(thetas, dtype=float)
     ok = arr[np.isfinite(arr)]
     level = study.inference.level
