@@ -6,6 +6,12 @@ supply relation gives, at each observation::
     markup = theta * Q*,   MC = P - markup,   Lerner = markup / P = theta / |elasticity|
 
 (Cowling & Waterson 1976 give the Cournot case, Lerner = H / |elasticity|.)
+
+Means of marginal cost, markup and Lerner index by period and by market get
+delta-method intervals: each mean is a smooth function of theta and of the
+demand coefficients (through Q*), so its influence function is the gradient
+times the stacked influence functions of theta (sequential) and of demand,
+clustered like the study.
 """
 
 from __future__ import annotations
@@ -14,9 +20,12 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from conduct.demand import DemandResult
-from conduct.panel import MARKET, PERIOD, Panel
+from conduct.design import codes
+from conduct.iv import cluster_cov
+from conduct.panel import MARKET, PERIOD, TIME, Panel
 from conduct.study import Study
 from conduct.supply import SupplyResult
 
@@ -38,12 +47,19 @@ class Derived:
     negative_cost_share : dict of str to float
         Share of negative implied marginal costs under the estimated theta
         (key ``estimated``) and under each candidate.
+    by_period, by_market : pandas.DataFrame or None
+        Per model and group: mean marginal cost, markup and Lerner index with
+        delta-method intervals at the study's level (columns ``model``, ``group``,
+        ``rows``, ``mc``, ``mc_lo``, ``mc_hi``, ``markup``, ``markup_lo``,
+        ``markup_hi``, ``lerner``, ``lerner_lo``, ``lerner_hi``).
     """
 
     observations: pd.DataFrame
     marginal_cost_mean: float | None
     lerner_mean: float | None
     negative_cost_share: dict[str, float]
+    by_period: pd.DataFrame | None = None
+    by_market: pd.DataFrame | None = None
 
 
 def derive(panel: Panel, study: Study, demand: DemandResult,
@@ -94,9 +110,73 @@ def derive(panel: Panel, study: Study, demand: DemandResult,
         valid = np.isfinite(mc)
         shares[name] = float(np.mean(mc[valid] < 0)) if valid.any() else float("nan")
     valid = np.isfinite(qstar)
+    tables = {}
+    for key, col in (("period", TIME), ("market", MARKET)):
+        group_codes = codes(f[col].to_numpy())
+        labels = (f.drop_duplicates(col).sort_values(col)[PERIOD if key == "period" else MARKET]
+                  .astype(str).tolist())
+        tables[key] = _group_means(p, q, demand, supply, variants, group_codes, labels,
+                                   study.inference.level)
     return Derived(
         observations=obs,
         marginal_cost_mean=float(np.mean(obs["marginal_cost_estimated"][valid])),
         lerner_mean=float(np.mean(obs["lerner_estimated"][valid])),
         negative_cost_share=shares,
+        by_period=tables["period"],
+        by_market=tables["market"],
     )
+
+
+def _group_means(p: np.ndarray, q: np.ndarray, demand: DemandResult, supply: SupplyResult,
+                 variants: list[tuple[str, np.ndarray]], group: np.ndarray,
+                 labels: list[str], level: float) -> pd.DataFrame:
+    """Means by group with delta-method intervals for each model.
+
+    For a group S and multiplier h (theta, or a candidate's fixed value), the mean
+    markup is ``m = mean_S(h_i Q*_i)``; its influence function is
+    ``mean_S(Q*_i) psi_theta`` (estimated theta only) plus
+    ``mean_S(h_i dQ*_i/dalpha) psi_alpha``; the Lerner mean weights by ``1/P``.
+    Marginal cost is ``mean_S(P) - m`` with the same variance as ``m``.
+    """
+    qstar = supply.qstar
+    ok = np.isfinite(qstar)
+    slope = demand.slope
+    dq = np.zeros_like(demand.slope_grad)
+    dq[ok] = (q[ok] / slope[ok] ** 2)[:, None] * demand.slope_grad[ok]
+    n_groups = len(labels)
+    member = np.zeros((len(p), n_groups))
+    member[ok, group[ok]] = 1.0
+    counts = member.sum(axis=0)
+    keep = counts > 0
+    member = member[:, keep] / counts[keep]
+    names = [lab for lab, k in zip(labels, keep, strict=True) if k]
+    z = float(stats.norm.ppf(0.5 + level / 2))
+    qs = np.where(ok, qstar, 0.0)
+    out = []
+    psi_a = demand.fit.influence
+    for name, h in variants:
+        hv = np.where(ok, h, 0.0)
+        estimated = name == "estimated"
+        for what, weight in (("markup", np.ones_like(p)), ("lerner", 1.0 / p)):
+            value = member.T @ (hv * qs * weight)
+            grad_a = member.T @ ((hv * weight)[:, None] * dq)
+            psi = psi_a @ grad_a.T
+            if estimated:
+                psi = psi + np.outer(supply.theta_influence, member.T @ (qs * weight))
+            var = np.diag(cluster_cov(psi, supply.full_cov, 1))
+            se = np.sqrt(np.clip(var, 0, None))
+            if what == "markup":
+                markup, markup_se = value, se
+            else:
+                lerner, lerner_se = value, se
+        mean_p = member.T @ np.where(ok, p, 0.0)
+        mc = mean_p - markup
+        out.append(pd.DataFrame({
+            "model": name, "group": names, "rows": counts[keep].astype(int),
+            "mc": mc, "mc_lo": mc - z * markup_se, "mc_hi": mc + z * markup_se,
+            "markup": markup, "markup_lo": markup - z * markup_se,
+            "markup_hi": markup + z * markup_se,
+            "lerner": lerner, "lerner_lo": lerner - z * lerner_se,
+            "lerner_hi": lerner + z * lerner_se,
+        }))
+    return pd.concat(out, ignore_index=True)

@@ -195,6 +195,11 @@ def write_run(res: Results, *, label: str | None = None,
         }
         obs = spreadsheet_safe(res.derived.observations)
         obs.to_csv(tmp / "observations.csv", index=False, float_format="%.10g")
+        for key, table in (("period", res.derived.by_period),
+                           ("market", res.derived.by_market)):
+            if table is not None:
+                spreadsheet_safe(table).to_csv(tmp / f"costs_by_{key}.csv", index=False,
+                                               float_format="%.10g")
         prints = row_fingerprints(res.panel, res.study.columns())
         spreadsheet_safe(prints).to_csv(tmp / FINGERPRINTS, index=False)
         prev_summary, prev_prints, prev_id = _previous(runs)

@@ -100,6 +100,10 @@ class SupplyResult:
         Effective F / Stock-Yogo reading for the supply stage.
     instruments : tuple of str
     prepared : Prepared
+    theta_influence : numpy.ndarray
+        (n,) sequential influence function of theta on every panel row.
+    full_cov : CovSpec
+        Covariance choice on the full panel (clusters by market), for derived statistics.
     """
 
     fit: IVFit
@@ -119,6 +123,8 @@ class SupplyResult:
     strength: Strength | None
     instruments: tuple[str, ...]
     prepared: Prepared
+    theta_influence: np.ndarray
+    full_cov: CovSpec
 
     def coefficients(self) -> pd.DataFrame:
         """Coefficient table with sequential standard errors (and the naive ones)."""
@@ -213,13 +219,31 @@ class SupplySystem:
         fit = fit_iv(cols[dependent], self.exog, self.endog, self.instr, self.names,
                      estimator="2sls", cov=self.prepared.cov, overid=overid,
                      instrument_names=self.instr_names)
+        return fit, cluster_cov(self.influence(fit, hvec), self.full_cov, fit.k)
+
+    def influence(self, fit: IVFit, hvec: np.ndarray) -> np.ndarray:
+        """Sequential influence functions of a fit on the full panel.
+
+        Parameters
+        ----------
+        fit : IVFit
+            A fit returned by :meth:`solve`.
+        hvec : numpy.ndarray
+            (n_s,) markup multiplier subtracted from price in its dependent variable.
+
+        Returns
+        -------
+        numpy.ndarray
+            (n, k) with ``b - beta ~ mean(psi_i)`` over all panel rows: the supply
+            influence plus the demand influence times ``A G_alpha``.
+        """
         deltas = fit.params[list(self.theta_index)][self.group]
         n = len(self.rows)
         g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
         psi = np.zeros((self.n_all, fit.k))
         psi[self.rows] += (self.n_all / n) * fit.influence
         psi += self.psi_demand @ (self.a_mat @ g_alpha).T
-        return fit, cluster_cov(psi, self.full_cov, fit.k)
+        return psi
 
 
 def build_system(
@@ -359,6 +383,7 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
     n = len(sys_.rows)
     level = study.inference.level
     main, cov = sys_.solve("_p", np.zeros(n), overid=with_tests)
+    psi_theta = sys_.influence(main, np.zeros(n))[:, sys_.theta_index[0]]
     i_theta = sys_.theta_index[0]
     theta = float(main.params[i_theta])
     se = float(np.sqrt(cov[i_theta, i_theta]))
@@ -393,5 +418,6 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
         ci=(theta - zc * se, theta + zc * se), tests=tuple(tests), verdict=verdict,
         not_rejected=kept, cournot_benchmark=bench, rows=sys_.rows, qstar=qstar_all,
         h=benchmark_h(panel, study), first_stage=first, strength=strength,
-        instruments=sys_.instr_names, prepared=sys_.prepared,
+        instruments=sys_.instr_names, prepared=sys_.prepared, theta_influence=psi_theta,
+        full_cov=sys_.full_cov,
     )
