@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from jinja2 import Environment
 
 from conduct.bootstrap import BootstrapResult, cluster_bootstrap
 from conduct.breaks import BreakResult, RollingResult, rolling_theta, sup_wald_break
@@ -25,6 +26,19 @@ from conduct.supply import SupplyResult, estimate_supply
 from conduct.thetaset import ThetaSet, theta_ar_set
 
 __all__ = ["Results", "estimate"]
+
+_HTML = Environment(autoescape=True).from_string(
+    """<div class="conduct-results"><h4>{{ title }}</h4><p>{{ desc }}</p>
+<table><tr><th>mean elasticity</th><td>{{ elasticity }}</td></tr>
+{% if theta is not none %}<tr><th>theta</th><td>{{ theta }} (se {{ se }}),
+{{ level }} CI {{ ci }}</td></tr><tr><th>verdict</th><td><b>{{ verdict }}</b></td></tr>
+{% endif %}</table>
+{% if tests %}<table><tr><th>model</th><th>Wald</th><th>p</th><th>decision</th></tr>
+{% for t in tests %}<tr><td>{{ t[0] }}</td><td>{{ t[1] }}</td><td>{{ t[2] }}</td>
+<td>{{ t[3] }}</td></tr>{% endfor %}</table>{% endif %}
+{% for w in warnings %}<p><i>warning: {{ w }}</i></p>{% endfor %}
+<p><small>Economic evidence under stated assumptions, not a legal finding.</small></p></div>"""
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,6 +101,24 @@ class Results:
                 lines.append(f"  {t.name:<14} Wald {t.stat:9.2f}  p {t.p:.4f}  {mark}")
             lines.append(f"verdict: {s.verdict}")
         return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        """A compact HTML summary for notebooks (escaped; no external resources)."""
+        s = self.supply
+        tests = [] if s is None else [
+            (t.name, f"{t.stat:.2f}", f"{t.p:.4f}", "rejected" if t.rejected else "not rejected")
+            for t in s.tests
+        ]
+        return _HTML.render(
+            title=self.study.title, desc=self.panel.description.text(),
+            elasticity=f"{np.mean(self.demand.elasticity):.3f}",
+            theta=None if s is None else f"{s.theta:.4f}",
+            se=None if s is None else f"{s.se:.4f}",
+            ci=None if s is None else f"[{s.ci[0]:.4f}, {s.ci[1]:.4f}]",
+            level=f"{self.study.inference.level:.0%}",
+            verdict=None if s is None else s.verdict, tests=tests,
+            warnings=self.warnings,
+        )
 
     def __repr__(self) -> str:
         theta = f", theta={self.supply.theta:.4f}" if self.supply is not None else ""
