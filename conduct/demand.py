@@ -20,7 +20,14 @@ import numpy as np
 import pandas as pd
 
 from conduct.design import Prepared, prepare
-from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
+from conduct.diagnostics import (
+    EndogeneityTest,
+    FirstStage,
+    Strength,
+    endogeneity_test,
+    first_stage_table,
+    stage_strength,
+)
 from conduct.errors import EstimationError
 from conduct.iv import IVFit, fit_iv
 from conduct.panel import Panel
@@ -60,6 +67,8 @@ class DemandResult:
         regressor, i.e. no rotators, and non-HAC errors only).
     ar_note : str
         Why there is no Anderson-Rubin set, when there is none.
+    endogeneity : EndogeneityTest or None
+        Control-function test that price (and price x rotator) is exogenous.
     prepared : Prepared
         The absorbed design (effects, covariance choice).
     instruments : tuple of str
@@ -77,6 +86,7 @@ class DemandResult:
     strength: Strength | None
     ar_set: ARSet | None
     ar_note: str
+    endogeneity: EndogeneityTest | None
     prepared: Prepared
     instruments: tuple[str, ...]
 
@@ -171,11 +181,13 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     first = (first_stage_table(endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov)
              if diagnostics else ())
     strength = None
+    endogeneity = None
     ar_set = None
     ar_note = "not computed"
     if diagnostics:
         strength = stage_strength(endog_arr, instr_arr, exog_arr, first, prep.cov,
                                   f"the {price_name} coefficient")
+        endogeneity = endogeneity_test(cols["_y"], exog_arr, endog_arr, instr_arr, prep.cov)
         if len(endog) > 1:
             ar_note = ("several endogenous regressors (price x rotator terms): the set is "
                        "reported for theta, not for the price coefficient")
@@ -202,6 +214,7 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
         strength=strength,
         ar_set=ar_set,
         ar_note=ar_note,
+        endogeneity=endogeneity,
         prepared=prep,
         instruments=tuple(instr),
     )

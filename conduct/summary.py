@@ -107,6 +107,11 @@ def build_summary(res: Results) -> dict[str, Any]:
              "convention": dem.ar_set.convention}
             if dem.ar_set is not None else {"note": dem.ar_note}
         ),
+        "endogeneity": (
+            {"stat": dem.endogeneity.stat, "df": dem.endogeneity.df, "p": dem.endogeneity.p,
+             "null": dem.endogeneity.null, "convention": dem.endogeneity.convention}
+            if dem.endogeneity is not None else None
+        ),
         "hansen_j": (
             {"stat": dem.fit.j_stat, "p": dem.fit.j_p, "df": dem.fit.j_df,
              "convention": dem.fit.j_convention}
