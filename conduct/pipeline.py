@@ -23,7 +23,7 @@ from conduct.panel import Panel, load_panel
 from conduct.regimes import SplitResult, theta_by
 from conduct.study import Study, load_study
 from conduct.supply import SupplyResult, estimate_supply
-from conduct.thetaset import ThetaSet, theta_ar_set
+from conduct.thetaset import ThetaSet, candidate_ar_tests, theta_ar_set
 
 __all__ = ["Results", "estimate"]
 
@@ -56,6 +56,8 @@ class Results:
     derived : Derived
     theta_set : ThetaSet or None
         Anderson-Rubin confidence set for theta.
+    candidate_ar : dict
+        Candidate name -> (AR statistic, df, p-value), robust to weak instruments.
     regimes, groups : SplitResult or None
         Theta per known regime / per group of markets, when the study asks.
     breaks : BreakResult or None
@@ -74,6 +76,7 @@ class Results:
     supply: SupplyResult | None
     derived: Derived
     theta_set: ThetaSet | None
+    candidate_ar: dict[str, tuple[float, int, float]]
     regimes: SplitResult | None
     groups: SplitResult | None
     breaks: BreakResult | None
@@ -185,6 +188,8 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
     theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
+    candidate_ar = (candidate_ar_tests(panel, st, demand, supply)
+                    if supply is not None else {})
     regimes = groups = breaks = rolling = None
     if supply is not None and st.supply is not None:
         if st.supply.regimes:
@@ -205,6 +210,7 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
                      "be estimated and were left out.",)
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
-        derived=derived, theta_set=theta_set, regimes=regimes, groups=groups, breaks=breaks,
+        derived=derived, theta_set=theta_set, candidate_ar=candidate_ar, regimes=regimes,
+        groups=groups, breaks=breaks,
         rolling=rolling, bootstrap=boot, warnings=warnings,
     )

@@ -42,6 +42,12 @@ def clean(value: Any) -> Any:
     return value
 
 
+def _ar_fields(ar: tuple[float, int, float] | None) -> dict[str, Any]:
+    if ar is None:
+        return {"ar_stat": None, "ar_df": None, "ar_p": None}
+    return {"ar_stat": ar[0], "ar_df": ar[1], "ar_p": ar[2]}
+
+
 def _split(split: SplitResult | None) -> dict[str, Any] | None:
     if split is None:
         return None
@@ -142,7 +148,8 @@ def build_summary(res: Results) -> dict[str, Any]:
             ),
             "tests": {
                 t.name: {"stat": t.stat, "p": t.p, "delta": t.delta, "se": t.se,
-                         "rejected": t.rejected, "null": t.null}
+                         "rejected": t.rejected, "null": t.null,
+                         **_ar_fields(res.candidate_ar.get(t.name))}
                 for t in s.tests
             },
             "verdict": s.verdict,

@@ -32,9 +32,9 @@ from conduct.design import codes
 from conduct.iv import CovSpec
 from conduct.panel import MARKET, Panel
 from conduct.study import Study
-from conduct.supply import QSTAR, SupplyResult
+from conduct.supply import QSTAR, SupplyResult, benchmark_h
 
-__all__ = ["ThetaSet", "theta_ar_set"]
+__all__ = ["ThetaSet", "candidate_ar_tests", "theta_ar_set"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -82,7 +82,7 @@ class _Linear:
     """Reduced-form coefficients and cluster sums, linear in (theta0, c)."""
 
     def __init__(self, panel: Panel, study: Study, demand: DemandResult,
-                 supply: SupplyResult) -> None:
+                 supply: SupplyResult, markup: tuple[str, np.ndarray] | None = None) -> None:
         assert study.supply is not None
         prep = supply.prepared
         cols = prep.columns
@@ -100,7 +100,13 @@ class _Linear:
         q = panel.frame[study.panel.quantity].to_numpy(dtype=float)[rows]
         slope = demand.slope[rows]
         dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]
-        ys = [cols["_p"], -cols[QSTAR], -cols["Q"]]  # y = P + theta0 (-Q*) + c (-Q)
+        if markup is None:
+            ys = [cols["_p"], -cols[QSTAR], -cols["Q"]]  # y = P + theta0 (-Q*) + c (-Q)
+        else:
+            # a candidate's markup h Q* (absorbed as P - h Q*); theta0 = 1 is the candidate
+            name, h = markup
+            ys = [cols["_p"], cols[f"_dep:{name}"] - cols["_p"], -cols["Q"]]
+            dqstar = h[rows][:, None] * dqstar
         self.pi = [m @ y for y in ys]
         resid = [y - r @ p for y, p in zip(ys, self.pi, strict=True)]
         g_alpha = -(rtr_inv @ (r.T @ dqstar) / n)  # d pi / d alpha per unit theta0
@@ -202,3 +208,30 @@ def theta_ar_set(panel: Panel, study: Study, demand: DemandResult, supply: Suppl
     return ThetaSet(intervals=tuple(intervals), kind=kind, level=level, df=df,
                     searched=(float(lo), float(hi)),
                     stat_at_estimate=lin.profile(supply.theta))
+
+
+def candidate_ar_tests(panel: Panel, study: Study, demand: DemandResult,
+                       supply: SupplyResult) -> dict[str, tuple[float, int, float]]:
+    """Anderson-Rubin test of each candidate model, robust to weak instruments.
+
+    For candidate m with markup ``h_i Q*_i`` the statistic tests that
+    ``P - h Q* (- c_q Q)`` is unrelated to the excluded instruments, with the
+    same generated-regressor correction and nuisance treatment as the set.
+
+    Returns
+    -------
+    dict
+        Candidate name -> (statistic, degrees of freedom, p-value).
+    """
+    h_all = benchmark_h(panel, study)
+    out: dict[str, tuple[float, int, float]] = {}
+    n = len(panel.frame)
+    for c in study.candidates:
+        h = np.full(n, c.theta) if c.theta is not None else h_all
+        if h is None or f"_dep:{c.name}" not in supply.prepared.columns:
+            continue
+        lin = _Linear(panel, study, demand, supply, markup=(c.name, h))
+        df = lin.kz - (1 if lin.nuisance else 0)
+        stat = lin.profile(1.0)
+        out[c.name] = (stat, df, float(stats.chi2.sf(stat, df)))
+    return out
