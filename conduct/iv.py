@@ -247,8 +247,13 @@ def fit_iv(
     cov: CovSpec,
     overid: bool = True,
     instrument_names: tuple[str, ...] | None = None,
+    checked: bool = False,
 ) -> IVFit:
-    """Fit a linear IV regression through linearmodels.
+    """Fit a linear IV regression through linearmodels (or the equal array path).
+
+    2SLS without Hansen's J under homoskedastic, robust or cluster covariance
+    runs on arrays (:func:`fit_2sls_arrays`), which tests keep equal to
+    linearmodels to rounding; everything else goes through linearmodels.
 
     Parameters
     ----------
@@ -269,6 +274,8 @@ def fit_iv(
         replicates).
     instrument_names : tuple of str or None
         Names of the excluded instruments, for messages.
+    checked : bool
+        The design was already checked by :func:`check_design` (skip the check).
 
     Returns
     -------
@@ -290,7 +297,12 @@ def fit_iv(
     if n - k - cov.df_penalty <= 0:
         raise EstimationError(f"Too few observations ({n}) for {k} coefficients plus "
                               f"{cov.df_penalty} absorbed effects.")
-    x, z = check_design(exog, endog, instruments, names, instrument_names)
+    if checked:
+        x, z = np.column_stack([exog, endog]), np.column_stack([exog, instruments])
+    else:
+        x, z = check_design(exog, endog, instruments, names, instrument_names)
+    if estimator == "2sls" and not (overid and kz > ke) and cov.kind != "hac":
+        return fit_2sls_arrays(y, x, z, names, cov, j_df=kz - ke)
     lm_cov = _LM_COV[cov.kind]
     kwargs = _lm_kwargs(cov, n)
     model_cls = {"2sls": IV2SLS, "liml": IVLIML}.get(estimator)
@@ -335,6 +347,53 @@ def fit_iv(
         j_df=kz - ke,
         kappa=kappa,
         j_convention=_j_convention(cov) if j_stat is not None else "",
+    )
+
+
+def fit_2sls_arrays(y: np.ndarray, x: np.ndarray, z: np.ndarray, names: tuple[str, ...],
+                    cov: CovSpec, j_df: int = 0) -> IVFit:
+    """Two-stage least squares on arrays, in the conventions of :func:`fit_iv`.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        (n,) dependent variable.
+    x : numpy.ndarray
+        (n, k) regressors ``[exog, endog]``.
+    z : numpy.ndarray
+        (n, m) instruments ``[exog, excluded]``.
+    names : tuple of str
+    cov : CovSpec
+        Homoskedastic, robust or cluster.
+    j_df : int
+        Over-identification degrees of freedom (J itself is not computed).
+
+    Returns
+    -------
+    IVFit
+
+    Notes
+    -----
+    With ``X_hat = P_Z X`` (from a QR factorisation of Z), ``b = (X_hat'X)^-1 X_hat'y``
+    and the influence is ``psi_i = n (X_hat'X_hat)^-1 X_hat_i e_i``; the covariance is
+    ``s2 (X_hat'X_hat)^-1`` (homoskedastic) or :func:`cluster_cov` of ``psi``.
+    """
+    n, k = x.shape
+    q, _ = np.linalg.qr(z)
+    xhat = q @ (q.T @ x)
+    bread = np.linalg.inv(xhat.T @ xhat)
+    b = bread @ (xhat.T @ y)
+    e = y - x @ b
+    psi = n * (xhat * e[:, None]) @ bread
+    if cov.kind == "homoskedastic":
+        dof = n - k - cov.df_penalty
+        covm = (e @ e / dof) * bread
+    else:
+        covm = cluster_cov(psi, cov, k)
+    return IVFit(
+        names=tuple(names), params=b, cov=covm, resid=e, influence=psi, nobs=n, k=k,
+        estimator="2sls", cov_spec=cov, convention=convention_text(cov, n, k, "2sls"),
+        j_stat=None, j_p=None, j_df=j_df, kappa=1.0,
     )
 
 

@@ -218,7 +218,7 @@ class SupplySystem:
         cols = self.prepared.columns
         fit = fit_iv(cols[dependent], self.exog, self.endog, self.instr, self.names,
                      estimator="2sls", cov=self.prepared.cov, overid=overid,
-                     instrument_names=self.instr_names)
+                     instrument_names=self.instr_names, checked=True)
         return fit, cluster_cov(self.influence(fit, hvec), self.full_cov, fit.k)
 
     def influence(self, fit: IVFit, hvec: np.ndarray) -> np.ndarray:
