@@ -31,7 +31,7 @@ def _paragraph(prefix: str, message: str) -> str:
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from conduct.identify import check_identification
-    from conduct.panel import load_panel
+    from conduct.panel import describe_assembly, load_panel, write_panel
     from conduct.study import load_study
 
     study = load_study(args.study)
@@ -54,6 +54,9 @@ def _cmd_check(args: argparse.Namespace) -> int:
               f"{'may rise with output' if s.cost_slope else 'constant in output'}")
         print(f"conduct   {ident.reason}")
         print(f"models    {', '.join(c.name for c in study.candidates)}")
+    print(describe_assembly(panel))
+    if args.write_panel is not None:
+        print(f"wrote     {write_panel(panel, args.write_panel)} (the assembled panel)")
     for w in ident.warnings:
         print(_paragraph("warning: ", w), file=sys.stderr)
     print("check     passed: nothing was estimated")
@@ -158,11 +161,12 @@ def _cmd_history(args: argparse.Namespace) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace) -> int:
-    from conduct.presets import run_simulate
+    from conduct.presets import preset_files, run_simulate
 
     out: Path = args.out
-    taken = [n for n in ("panel.csv", "panel.parquet", "study.toml", "truth.json",
-                         "truth_observations.csv") if (out / n).exists()]
+    names = dict.fromkeys([*preset_files(args.preset, "csv"), *preset_files(args.preset,
+                                                                            "parquet")])
+    taken = [n for n in names if (out / n).exists()]
     if out.exists() and not out.is_dir():
         raise ConductError(f"Output folder {out} exists and is not a folder.")
     if taken and not args.replace:
@@ -174,8 +178,7 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
                          conduct=args.conduct, episode=args.episode, form=args.form,
                          seed=args.seed, fmt=args.format)
     if not args.quiet:
-        print(f"wrote {study.parent}: panel.{args.format}, study.toml, truth.json, "
-              "truth_observations.csv")
+        print(f"wrote {study.parent}: {', '.join(preset_files(args.preset, args.format))}")
         print(f"next: conduct estimate {study}")
     return EXIT_OK
 
@@ -217,6 +220,8 @@ def _parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
     c = sub.add_parser("check", help="validate a study and its panel; estimate nothing")
     c.add_argument("study", type=Path, help="study file (TOML)")
+    c.add_argument("--write-panel", type=Path, metavar="FILE",
+                   help="save the assembled panel (.csv, .parquet, .xlsx or .dta)")
     e = sub.add_parser("estimate", help="run the whole job and write a new run folder")
     e.add_argument("study", type=Path, help="study file (TOML)")
     e.add_argument("--json", action="store_true", help="print summary.json instead of a table")

@@ -28,12 +28,13 @@ import dataclasses
 import json
 import math
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import pandas as pd
 
 from conduct.errors import StudyFileError, suggest
+from conduct.layouts import SourceLayout, layout_files, layout_toml, write_sources
 from conduct.simulate import (
     CONDUCTS,
     Conduct,
@@ -50,9 +51,11 @@ from conduct.simulate import (
 __all__ = [
     "LOG_DEMAND",
     "PRESETS",
+    "PRESET_LAYOUTS",
     "REGION_NAMES",
     "parse_conduct",
     "parse_episodes",
+    "preset_files",
     "run_simulate",
     "study_toml",
     "truth_document",
@@ -103,6 +106,33 @@ PRESETS: dict[str, SimulationSpec] = {
         seed=1,
     ),
 }
+
+
+#: Presets written as several sources (the demo study exercises the panel assembly):
+#: cost indexes by region-quarter, a national price index by quarter (the main table
+#: then holds prices in current money, deflated by the study), firm-level quantities.
+PRESET_LAYOUTS: dict[str, SourceLayout] = {"road-salt": SourceLayout()}
+
+_FIXED_FILES = ("study.toml", "truth.json", "truth_observations.csv")
+
+
+def preset_files(preset: str | None, fmt: str = "csv") -> tuple[str, ...]:
+    """Every file ``conduct simulate`` writes for a preset (None: the defaults).
+
+    Parameters
+    ----------
+    preset : str or None
+    fmt : {"csv", "parquet"}
+
+    Returns
+    -------
+    tuple of str
+        ``panel.<fmt>``, any source files of the preset's layout, then the study
+        file and the truth files; for the command's never-overwrite check.
+    """
+    layout = PRESET_LAYOUTS.get(preset) if preset else None
+    extra = layout_files(layout, fmt) if layout is not None else ()
+    return (f"panel.{fmt}", *extra, *_FIXED_FILES)
 
 
 # ----------------------------------------------------------------------------------------
@@ -328,7 +358,8 @@ def run_simulate(
                     f"{spec.periods} periods; set an episode that fits (e.g. "
                     "'collusive:markets=1-3:periods=5-8') or 'none'."
                 )
-    return write_study(out_dir, spec, fmt=fmt)
+    layout = PRESET_LAYOUTS.get(preset) if preset is not None else None
+    return write_study(out_dir, spec, fmt=fmt, layout=layout)
 
 
 # ----------------------------------------------------------------------------------------
@@ -356,7 +387,7 @@ def _toml_list(items: list[str]) -> str:
     return "[" + ", ".join(json.dumps(s) for s in items) + "]"
 
 
-def study_toml(spec: SimulationSpec, panel_file: str) -> str:
+def study_toml(spec: SimulationSpec, panel_file: str, sources: list[str] | None = None) -> str:
     """The ``study.toml`` text for a simulated panel (design section 3 keys).
 
     Parameters
@@ -364,6 +395,9 @@ def study_toml(spec: SimulationSpec, panel_file: str) -> str:
     spec : SimulationSpec
     panel_file : str
         Panel file name, relative to the study file.
+    sources : list of str or None
+        Lines for ``[[sources]]``, ``[firms]`` and ``[derive]``, placed after
+        ``[panel]`` (:func:`conduct.layouts.layout_toml`).
 
     Returns
     -------
@@ -386,6 +420,7 @@ def study_toml(spec: SimulationSpec, panel_file: str) -> str:
         f"quantity = {json.dumps(spec.quantity_column)}",
         'sellers = "sellers"',
         'concentration = "hhi"',
+        *(sources or []),
         "",
         "[demand]",
         f"form = {json.dumps(spec.form)}",
@@ -510,7 +545,15 @@ def truth_document(sim: SimulatedPanel, files: dict[str, str]) -> dict[str, Any]
     }
 
 
-def write_study(out_dir: Path, spec: SimulationSpec, fmt: str = "csv") -> Path:
+def _auto_layout(spec: SimulationSpec) -> SourceLayout | None:
+    for name, layout in PRESET_LAYOUTS.items():
+        if spec == PRESETS[name]:
+            return layout
+    return None
+
+
+def write_study(out_dir: Path, spec: SimulationSpec, fmt: str = "csv",
+                layout: SourceLayout | Literal["auto"] | None = "auto") -> Path:
     """Simulate and write panel, ``study.toml``, ``truth.json`` and ``truth_observations.csv``.
 
     Parameters
@@ -520,6 +563,10 @@ def write_study(out_dir: Path, spec: SimulationSpec, fmt: str = "csv") -> Path:
     spec : SimulationSpec
     fmt : {"csv", "parquet"}
         Panel file format (``panel.csv`` or ``panel.parquet``).
+    layout : SourceLayout, None or "auto"
+        Split the panel into several sources (:mod:`conduct.layouts`); None writes
+        one file; ``"auto"`` uses the layout of the preset ``spec`` equals
+        (:data:`PRESET_LAYOUTS`: the demo study), else one file.
 
     Returns
     -------
@@ -542,22 +589,31 @@ def write_study(out_dir: Path, spec: SimulationSpec, fmt: str = "csv") -> Path:
             f"Unknown panel format '{fmt}'{suggest(fmt, FORMATS)}; use {' or '.join(FORMATS)}."
         )
     validate_spec(spec)
+    if layout == "auto":
+        layout = _auto_layout(spec)
     sim = simulate(spec)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     panel_name = f"panel.{fmt}"
     frame = _panel_frame(sim)
+    extra: dict[str, str] = {}
+    toml_lines: list[str] = []
+    if layout is not None:
+        frame = write_sources(sim, frame, layout, out, fmt)
+        toml_lines = layout_toml(sim, layout, fmt)
+        extra = {name.split(".")[0]: name for name in layout_files(layout, fmt)}
     if fmt == "csv":
         frame.to_csv(out / panel_name, index=False, lineterminator="\n")
     else:
         frame.to_parquet(out / panel_name, index=False, engine="pyarrow", compression="snappy")
-    files = {"panel": panel_name, "study": "study.toml", "observations": "truth_observations.csv"}
+    files = {"panel": panel_name, "study": "study.toml", "observations": "truth_observations.csv",
+             **extra}
     pd.DataFrame(sim.truth).to_csv(out / files["observations"], index=False, lineterminator="\n")
     doc = truth_document(sim, files)
     text = json.dumps(doc, sort_keys=True, indent=2, allow_nan=False, default=_json_default)
     (out / "truth.json").write_text(text + "\n", encoding="utf-8")
     study = out / "study.toml"
-    study.write_text(study_toml(spec, panel_name), encoding="utf-8")
+    study.write_text(study_toml(spec, panel_name, toml_lines), encoding="utf-8")
     return study
 
 

@@ -25,6 +25,7 @@ from typing import Any
 import pandas as pd
 
 from conduct.alerts import AlertSpec, evaluate_alerts
+from conduct.coverage import source_changes, source_changes_line
 from conduct.errors import ConductError
 from conduct.panel import row_fingerprints
 from conduct.pipeline import Results
@@ -122,8 +123,11 @@ def _changes_line(ch: dict[str, Any] | None) -> str:
     periods = ch["new_periods"]
     what = (f"{len(periods)} new period(s) ({periods[0]} to {periods[-1]})" if periods
             else "no new periods")
-    return (f"since {ch['previous_run']}: {what}, {len(ch['new_markets'])} new market(s), "
+    line = (f"since {ch['previous_run']}: {what}, {len(ch['new_markets'])} new market(s), "
             f"{ch['revised_rows']} revised row(s), {ch['removed_rows']} removed row(s)")
+    if ch.get("sources") is not None:
+        line += f"; {source_changes_line(ch['sources'])}"
+    return line
 
 
 def _previous(runs: Path) -> tuple[dict[str, Any] | None, pd.DataFrame | None, str | None]:
@@ -204,6 +208,9 @@ def write_run(res: Results, *, label: str | None = None,
         spreadsheet_safe(prints).to_csv(tmp / FINGERPRINTS, index=False)
         prev_summary, prev_prints, prev_id = _previous(runs)
         changes = data_changes(prints, prev_prints, prev_id)
+        if changes is not None:
+            previous_sources = (prev_summary or {}).get("data", {}).get("sources")
+            changes["sources"] = source_changes(summary["data"]["sources"], previous_sources)
         summary["data"]["changes"] = changes
         summary["data"]["changes_line"] = _changes_line(changes)
         summary["run"] = {"id": base, "folder": None}

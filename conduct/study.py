@@ -9,15 +9,22 @@ Nothing in a study file is ever evaluated as code.
 
 from __future__ import annotations
 
-import difflib
-import math
 import tomllib
-from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, get_args
 
 from conduct.errors import StudyFileError, suggest
+from conduct.schema import TableReader, resolve_path, sub_table
+from conduct.study_data import (
+    DerivedSpec,
+    FirmSpec,
+    SourceSpec,
+    check_made_names,
+    parse_derived,
+    parse_firms,
+    parse_sources,
+)
 
 __all__ = [
     "Candidate",
@@ -146,7 +153,12 @@ class OutputSpec:
 
 @dataclass(frozen=True, slots=True)
 class Study:
-    """A whole study: panel, demand, optional supply, candidates, inference, output."""
+    """A whole study: panel, demand, optional supply, candidates, inference, output.
+
+    ``sources``, ``firms`` and ``derived`` say how the panel is assembled from
+    further tables (:mod:`conduct.study_data`); a column named anywhere in the
+    specification may be one they make.
+    """
 
     path: Path
     title: str
@@ -157,9 +169,16 @@ class Study:
     inference: InferenceSpec = field(default_factory=InferenceSpec)
     output: OutputSpec = field(default_factory=OutputSpec)
     text: str = ""
+    sources: tuple[SourceSpec, ...] = ()
+    firms: FirmSpec | None = None
+    derived: tuple[DerivedSpec, ...] = ()
 
     def columns(self) -> tuple[str, ...]:
-        """Every data column the study uses, in a stable order without repeats."""
+        """Every data column the study uses, in a stable order without repeats.
+
+        A name may be one the panel assembly makes (``[firms]`` outputs,
+        ``[derive]`` variables); :meth:`raw_columns` lists what is read from files.
+        """
         names: list[str | None] = [
             self.panel.market,
             self.panel.period,
@@ -187,141 +206,32 @@ class Study:
             keys.update(c for c in (self.supply.regimes, self.supply.groups) if c)
         return tuple(c for c in self.columns() if c not in keys)
 
+    def made_columns(self) -> tuple[str, ...]:
+        """Columns made while assembling the panel: [firms] outputs, then [derive] names."""
+        made = self.firms.outputs() if self.firms is not None else ()
+        return (*made, *(d.name for d in self.derived))
 
-# ----------------------------------------------------------------------------------------
-# A tiny schema: each table lists its keys with a converter and a default.
-# ----------------------------------------------------------------------------------------
+    def raw_columns(self) -> tuple[str, ...]:
+        """Columns read from the data files: used columns not made, inputs of made ones.
 
-_REQUIRED = object()
-
-
-class _Reader:
-    """Reads one TOML table, key by key, and complains precisely."""
-
-    def __init__(self, table: Mapping[str, Any], where: str, file: Path) -> None:
-        self.table = dict(table)
-        self.where = where
-        self.file = file
-        self.used: set[str] = set()
-
-    def _name(self, key: str) -> str:
-        return f"{self.where}.{key}" if self.where else key
-
-    def fail(self, key: str, message: str) -> StudyFileError:
-        return StudyFileError(f"Study file {self.file}: key '{self._name(key)}' {message}")
-
-    def get(self, key: str, conv: Callable[[Any, str], Any], default: Any = _REQUIRED) -> Any:
-        self.used.add(key)
-        if key not in self.table:
-            if default is _REQUIRED:
-                # a misspelt required key would otherwise hide behind "missing"
-                near = difflib.get_close_matches(key, [str(k) for k in self.table], n=1)
-                hint = (f" The table has an unknown key '{self._name(near[0])}' (did you mean "
-                        f"'{key}'?)." if near else "")
-                raise StudyFileError(
-                    f"Study file {self.file}: required key '{self._name(key)}' is missing."
-                    + hint
-                )
-            return default
-        return conv(self.table[key], key)
-
-    def finish(self) -> None:
-        for key in self.table:
-            if key not in self.used:
-                hint = suggest(key, self.used)
-                valid = ", ".join(sorted(self.used))
-                raise StudyFileError(
-                    f"Study file {self.file}: unknown key '{self._name(key)}'{hint}. "
-                    f"Valid keys here: {valid}."
-                )
-
-    # converters --------------------------------------------------------------------
-    def string(self, value: Any, key: str) -> str:
-        if not isinstance(value, str) or not value.strip():
-            raise self.fail(key, f"must be a non-empty string, got {value!r}.")
-        return value.strip()
-
-    def opt_string(self, value: Any, key: str) -> str | None:
-        if value == "":
-            return None
-        return self.string(value, key)
-
-    def strings(self, value: Any, key: str) -> tuple[str, ...]:
-        if isinstance(value, str):
-            raise self.fail(key, f"must be a list of names, e.g. [{_quote(value)}], got "
-                                 f"the bare string {value!r}.")
-        if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
-            raise self.fail(key, f"must be a list of column names (strings), got {value!r}.")
-        out = tuple(v.strip() for v in value)
-        dupes = sorted({v for v in out if out.count(v) > 1})
-        if dupes:
-            raise self.fail(key, f"lists {', '.join(dupes)} more than once.")
-        return out
-
-    def number(self, value: Any, key: str) -> float:
-        ok = isinstance(value, int | float) and not isinstance(value, bool)
-        if not ok or not math.isfinite(value):
-            raise self.fail(key, f"must be a finite number, got {value!r}.")
-        return float(value)
-
-    def boolean(self, value: Any, key: str) -> bool:
-        if not isinstance(value, bool):
-            raise self.fail(key, f"must be true or false, got {value!r}.")
-        return value
-
-    def integer(self, value: Any, key: str) -> int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise self.fail(key, f"must be an integer, got {value!r}.")
-        return value
-
-    def choice(self, options: tuple[str, ...]) -> Callable[[Any, str], str]:
-        def conv(value: Any, key: str) -> str:
-            if not isinstance(value, str) or value not in options:
-                hint = suggest(str(value), options)
-                raise self.fail(
-                    key, f"is {value!r}{hint}; allowed values: {', '.join(options)}."
-                )
-            return value
-
-        return conv
-
-    def choices(self, options: tuple[str, ...]) -> Callable[[Any, str], tuple[str, ...]]:
-        one = self.choice(options)
-
-        def conv(value: Any, key: str) -> tuple[str, ...]:
-            items = self.strings(value, key) if value != [] else ()
-            return tuple(one(v, key) for v in items)
-
-        return conv
-
-
-def _quote(text: str) -> str:
-    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
-
-
-def _table(reader: _Reader, key: str, required: bool) -> dict[str, Any] | None:
-    reader.used.add(key)
-    if key not in reader.table:
-        if required:
-            raise StudyFileError(f"Study file {reader.file}: required table [{key}] is missing.")
-        return None
-    value = reader.table[key]
-    if not isinstance(value, dict):
-        raise StudyFileError(
-            f"Study file {reader.file}: '{key}' must be a table ([{key}]), got {value!r}."
-        )
-    return value
-
-
-def _resolve(base: Path, raw: str) -> Path:
-    p = Path(raw).expanduser()
-    return p if p.is_absolute() else (base / p)
+        The order is stable and without repeats: :meth:`columns` first, then the
+        inputs of derived variables, then ``firms.check_total``.
+        """
+        made = set(self.made_columns())
+        names = [*self.columns(), *(c for d in self.derived for c in d.of)]
+        if self.firms is not None and self.firms.check_total:
+            names.append(self.firms.check_total)
+        out: list[str] = []
+        for n in names:
+            if n not in made and n not in out:
+                out.append(n)
+        return tuple(out)
 
 
 def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
-    r = _Reader(t, "panel", file)
+    r = TableReader(t, "panel", file)
     raw_file = r.get("file", r.string)
-    path = _resolve(file.parent, raw_file)
+    path = resolve_path(file.parent, raw_file)
     if path.suffix.lower() not in DATA_SUFFIXES:
         raise r.fail(
             "file",
@@ -362,7 +272,7 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
 
 
 def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
-    r = _Reader(t, "demand", file)
+    r = TableReader(t, "demand", file)
     spec = DemandSpec(
         form=r.get("form", r.choice(get_args(Form)), "linear"),
         shifters=r.get("shifters", r.strings, ()),
@@ -390,7 +300,7 @@ def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
 
 
 def _supply(t: dict[str, Any], file: Path) -> SupplySpec:
-    r = _Reader(t, "supply", file)
+    r = TableReader(t, "supply", file)
     spec = SupplySpec(
         cost_shifters=r.get("cost_shifters", r.strings, ()),
         cost_slope=r.get("cost_slope", r.boolean, True),
@@ -410,7 +320,7 @@ def _supply(t: dict[str, Any], file: Path) -> SupplySpec:
 def _candidates(t: dict[str, Any] | None, file: Path) -> tuple[Candidate, ...]:
     if t is None:
         return tuple(Candidate(n, v) for n, v in BUILTIN_MODELS.items())
-    r = _Reader(t, "models", file)
+    r = TableReader(t, "models", file)
 
     def conv(value: Any, key: str) -> tuple[Candidate, ...]:
         if not isinstance(value, list) or not value:
@@ -427,7 +337,7 @@ def _candidates(t: dict[str, Any] | None, file: Path) -> tuple[Candidate, ...]:
                     )
                 out.append(Candidate(item, BUILTIN_MODELS[item]))
             elif isinstance(item, dict):
-                sub = _Reader(item, f"models.candidates[{i + 1}]", file)
+                sub = TableReader(item, f"models.candidates[{i + 1}]", file)
                 name = sub.get("name", sub.string)
                 theta = sub.get("theta", sub.number)
                 sub.finish()
@@ -453,7 +363,7 @@ def _candidates(t: dict[str, Any] | None, file: Path) -> tuple[Candidate, ...]:
 def _inference(t: dict[str, Any] | None, file: Path) -> InferenceSpec:
     if t is None:
         return InferenceSpec()
-    r = _Reader(t, "inference", file)
+    r = TableReader(t, "inference", file)
 
     def level(value: Any, key: str) -> float:
         if isinstance(value, bool) or not isinstance(value, int | float) or not 0.5 <= value < 1:
@@ -475,8 +385,8 @@ def _inference(t: dict[str, Any] | None, file: Path) -> InferenceSpec:
 def _output(t: dict[str, Any] | None, file: Path) -> OutputSpec:
     if t is None:
         return OutputSpec(runs=file.parent / "runs")
-    r = _Reader(t, "output", file)
-    spec = OutputSpec(runs=_resolve(file.parent, r.get("runs", r.string, "runs")))
+    r = TableReader(t, "output", file)
+    spec = OutputSpec(runs=resolve_path(file.parent, r.get("runs", r.string, "runs")))
     r.finish()
     return spec
 
@@ -517,6 +427,23 @@ def _check_roles(panel: PanelSpec, demand: DemandSpec, supply: SupplySpec | None
             )
 
 
+def _check_made(panel: PanelSpec, firms: FirmSpec | None, derived: tuple[DerivedSpec, ...],
+                file: Path) -> None:
+    """Columns made by [firms] and [derive] need distinct names and data inputs."""
+    keys = {c: f"panel.{k}" for k, c in (("market", panel.market), ("period", panel.period))
+            if c}
+    made = [(c, "[firms]") for c in (firms.outputs() if firms else ())]
+    made += [(d.name, f"derive.{d.name}") for d in derived]
+    check_made_names(made, keys, file)
+    for d in derived:
+        for c in d.of:
+            if c in keys:
+                raise StudyFileError(
+                    f"Study file {file}: key 'derive.{d.name}.of' uses {keys[c]} '{c}'; "
+                    "keys are labels, not numbers (op = \"season\" reads the period)."
+                )
+
+
 def parse_study(text: str, path: Path) -> Study:
     """Parse and validate study-file text.
 
@@ -542,17 +469,26 @@ def parse_study(text: str, path: Path) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyFileError(f"Study file {path} is not valid TOML: {exc}.") from None
-    top = _Reader(raw, "", path)
+    top = TableReader(raw, "", path)
     title = top.get("title", top.string, path.stem)
-    panel = _panel(_table(top, "panel", True) or {}, path)
-    demand = _demand(_table(top, "demand", True) or {}, path)
-    supply_t = _table(top, "supply", False)
+    panel = _panel(sub_table(top, "panel", True) or {}, path)
+    demand = _demand(sub_table(top, "demand", True) or {}, path)
+    supply_t = sub_table(top, "supply", False)
     supply = _supply(supply_t, path) if supply_t is not None else None
-    candidates = _candidates(_table(top, "models", False), path)
-    inference = _inference(_table(top, "inference", False), path)
-    output = _output(_table(top, "output", False), path)
+    candidates = _candidates(sub_table(top, "models", False), path)
+    inference = _inference(sub_table(top, "inference", False), path)
+    output = _output(sub_table(top, "output", False), path)
+    top.used.update(("sources", "firms", "derive"))
+    sources = (parse_sources(raw["sources"], path, panel.market, panel.period, DATA_SUFFIXES)
+               if "sources" in raw else ())
+    firms_t = sub_table(top, "firms", False)
+    firms = (parse_firms(firms_t, path, panel.market, panel.period, DATA_SUFFIXES)
+             if firms_t is not None else None)
+    derive_t = sub_table(top, "derive", False)
+    derived = parse_derived(derive_t, path) if derive_t is not None else ()
     top.finish()
     _check_roles(panel, demand, supply, path)
+    _check_made(panel, firms, derived, path)
     return Study(
         path=path,
         title=title,
@@ -563,6 +499,9 @@ def parse_study(text: str, path: Path) -> Study:
         inference=inference,
         output=output,
         text=text,
+        sources=sources,
+        firms=firms,
+        derived=derived,
     )
 
 

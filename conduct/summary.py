@@ -222,6 +222,8 @@ def build_summary(res: Results) -> dict[str, Any]:
             "dropped_by_column": d.dropped_detail,
             "balanced": d.balanced,
             "gaps": d.gaps,
+            "sources": res.panel.assembly.sources_document() if res.panel.assembly else {},
+            "derived": res.panel.assembly.derived_document() if res.panel.assembly else {},
         },
         "demand": demand,
         "conduct": conduct,

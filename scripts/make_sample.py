@@ -1,6 +1,7 @@
 """Regenerate ``sample_panel/`` from the ``road-salt`` preset.
 
-Writes ``panel.csv``, ``study.toml``, ``truth.json`` and ``truth_observations.csv``
+Writes the demo's sources (``panel.csv``, ``costs.csv``, ``national.csv``,
+``firms.csv``), ``study.toml``, ``truth.json`` and ``truth_observations.csv``
 into ``sample_panel/`` beside this script's folder; ``sample_panel/README.md`` is
 kept.  The output is byte-identical on every run (fixed seed, sorted keys).
 
@@ -14,7 +15,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from conduct.presets import PRESETS, write_study
+from conduct.presets import PRESETS, preset_files, write_study
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -34,7 +35,7 @@ def main(argv: list[str]) -> int:
     """
     out = Path(argv[0]) if argv else ROOT / "sample_panel"
     study = write_study(out, PRESETS["road-salt"], fmt="csv")
-    print(f"wrote {study.parent}: panel.csv, study.toml, truth.json, truth_observations.csv")
+    print(f"wrote {study.parent}: {', '.join(preset_files('road-salt'))}")
     return 0
 
 

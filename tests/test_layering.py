@@ -12,11 +12,12 @@ from pathlib import Path
 PACKAGE = Path(__file__).resolve().parent.parent / "conduct"
 
 ORDER = [
-    "errors", "progress", "study", "panel", "absorb", "iv", "weakiv", "stockyogo",
-    "diagnostics", "design", "demand", "identify", "supply", "menu_stats", "menu",
-    "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "summary",
-    "alerts", "figures", "tables", "report", "runs", "compare", "simulate", "presets", "cli",
-    "__init__",
+    "errors", "progress", "executor", "schema", "study_data", "study", "tableio",
+    "derive_ops", "firms", "coverage", "assemble", "panel", "absorb", "iv", "weakiv",
+    "stockyogo", "diagnostics", "design", "demand", "identify", "supply", "menu_stats",
+    "menu", "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "power_sim",
+    "power", "summary", "alerts", "figures", "tables", "report", "runs", "compare",
+    "simulate", "layouts", "presets", "cli", "__init__",
 ]
 
 

@@ -1,0 +1,245 @@
+"""Reading data files and their keys: the file-level helpers every table shares.
+
+:func:`read_table` reads CSV, Parquet, Stata ``.dta`` and Excel ``.xlsx`` with
+the readers pandas has; :func:`parse_periods` turns a period column into
+normalised labels and integer positions on its own calendar (integers,
+``2019Q3``-style quarters, ``2019-07`` months, ISO dates); :func:`market_labels`
+normalises market identifiers; :func:`to_numeric` converts a column and names
+the rows that are not numbers.  Messages name the file, the column and the
+rows in the file (the header of a text file is row 1).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from conduct.errors import DataError, suggest
+
+__all__ = [
+    "MARKET", "PERIOD", "TIME", "file_row", "file_rows", "file_sha256", "market_labels",
+    "parse_periods", "read_table", "rows_text", "to_numeric",
+]
+
+# Internal column names of assembled and validated frames.
+MARKET = "_market"  # market label as a string ("all" for a single time series)
+PERIOD = "_period"  # period label as a string, as written by the user (normalised)
+TIME = "_t"  # integer position of the period on its own calendar (for ordering, gaps, lags)
+
+_QUARTER = re.compile(r"^\s*(\d{4})\s*[-_ ]?\s*[Qq]([1-4])\s*$")
+_MONTH = re.compile(r"^\s*(\d{4})[-/](\d{1,2})\s*$")
+
+
+def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
+               sheet_key: str = "panel.sheet") -> pd.DataFrame:
+    """Read a CSV, Parquet, Stata or Excel file into a DataFrame.
+
+    Parameters
+    ----------
+    path : Path
+        File to read; its suffix picks the reader.
+    sheet : str or None
+        Excel sheet name; required when the workbook has several sheets.
+    what : str
+        How to name the file in messages.
+    sheet_key : str
+        The study-file key that names the sheet, for messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+
+    Raises
+    ------
+    DataError
+        When the file is missing, unreadable, empty or of an unknown type.
+    """
+    if path.is_dir():
+        raise DataError(f"{what} {path} is a directory; give the path of a file.")
+    if not path.exists():
+        raise DataError(f"{what} {path} does not exist (paths are relative to the study file).")
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".csv":
+            frame = _read_csv(path, what)
+        elif suffix in (".parquet", ".pq"):
+            frame = pd.read_parquet(path)
+        elif suffix == ".dta":
+            frame = pd.read_stata(path, convert_categoricals=False)
+        elif suffix == ".xlsx":
+            frame = _read_excel(path, sheet, what, sheet_key)
+        else:
+            raise DataError(f"{what} {path}: files of type '{suffix}' are not read.")
+    except DataError:
+        raise
+    except PermissionError:
+        raise DataError(f"{what} {path} cannot be read: permission denied.") from None
+    except Exception as exc:  # reader-specific failures become one clear message
+        raise DataError(f"{what} {path} could not be read as {suffix[1:]}: {exc}.") from None
+    if frame.shape[1] == 0:
+        raise DataError(f"{what} {path} has no columns.")
+    if len(frame) == 0:
+        raise DataError(f"{what} {path} has a header but no data rows.")
+    frame.columns = [str(c).strip() for c in frame.columns]
+    return frame
+
+
+def _read_csv(path: Path, what: str) -> pd.DataFrame:
+    raw = path.read_bytes()
+    if not raw.strip():
+        raise DataError(f"{what} {path} is empty.")
+    try:
+        raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise DataError(
+            f"{what} {path} is not UTF-8 text (first bad byte at offset {exc.start}); "
+            "re-save it as UTF-8."
+        ) from None
+    try:
+        return pd.read_csv(path, encoding="utf-8-sig")
+    except pd.errors.ParserError as exc:
+        raise DataError(f"{what} {path}: rows do not all have the same fields ({exc}).") from None
+    except pd.errors.EmptyDataError:
+        raise DataError(f"{what} {path} is empty.") from None
+
+
+def _read_excel(path: Path, sheet: str | None, what: str, sheet_key: str) -> pd.DataFrame:
+    with pd.ExcelFile(path) as book:
+        names = [str(s) for s in book.sheet_names]
+        if sheet is None:
+            if len(names) > 1:
+                raise DataError(
+                    f"{what} {path} has {len(names)} sheets ({', '.join(names)}); "
+                    f"name one with {sheet_key}."
+                )
+            sheet = names[0]
+        if sheet not in names:
+            raise DataError(
+                f"{what} {path} has no sheet '{sheet}'{suggest(sheet, names)}; "
+                f"sheets: {', '.join(names)}."
+            )
+        return pd.read_excel(book, sheet_name=sheet)
+
+
+def file_row(i: int, suffix: str) -> int:
+    """Row number in the file of data row ``i`` (0-based): text files count the header."""
+    return i + 2 if suffix in (".csv", ".xlsx") else i + 1
+
+
+def rows_text(rows: np.ndarray, limit: int = 5) -> str:
+    """``row 5`` or ``rows 5, 9, 12 and 3 more`` for messages."""
+    shown = ", ".join(str(int(r)) for r in rows[:limit])
+    more = f" and {len(rows) - limit} more" if len(rows) > limit else ""
+    return f"row{'s' if len(rows) > 1 else ''} {shown}{more}"
+
+
+def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray,
+                  what: str = "Data file") -> tuple[np.ndarray, np.ndarray, str]:
+    """Return (labels, integer calendar positions, kind) for a period column.
+
+    ``file_rows`` holds each value's row number in the file, for messages.
+    """
+    if pd.api.types.is_bool_dtype(values):
+        raise DataError(f"{what} {path}: period column '{col}' holds true/false values.")
+    if pd.api.types.is_datetime64_any_dtype(values):
+        stamps = pd.DatetimeIndex(values)
+        return (
+            np.asarray(stamps.strftime("%Y-%m-%d"), dtype=object),
+            _rank(stamps.asi8),
+            "date",
+        )
+    if pd.api.types.is_numeric_dtype(values):
+        arr = values.to_numpy(dtype=float)
+        if not np.all(np.isfinite(arr)) or not np.all(arr == np.round(arr)):
+            bad = np.flatnonzero(~np.isfinite(arr) | (arr != np.round(arr)))
+            raise DataError(
+                f"{what} {path}: period column '{col}' has non-integer values at "
+                f"{rows_text(file_rows[bad])}; periods must be integers, dates or labels like "
+                "2019Q3."
+            )
+        ints = arr.astype(np.int64)
+        return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
+    text = values.astype(str).str.strip()
+    if text.str.fullmatch(r"-?\d+").all():  # integers stored as text
+        ints = text.astype(np.int64).to_numpy()
+        return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
+    q = text.str.extract(_QUARTER)
+    if q.notna().all().all():
+        years, qs = q[0].astype(int).to_numpy(), q[1].astype(int).to_numpy()
+        labels = np.asarray([f"{y}Q{k}" for y, k in zip(years, qs, strict=True)], dtype=object)
+        return labels, years * 4 + (qs - 1), "quarter"
+    m = text.str.extract(_MONTH)
+    if m.notna().all().all():
+        years, ms = m[0].astype(int).to_numpy(), m[1].astype(int).to_numpy()
+        if ((ms >= 1) & (ms <= 12)).all():
+            labels = np.asarray([f"{y}-{k:02d}" for y, k in zip(years, ms, strict=True)],
+                                dtype=object)
+            return labels, years * 12 + (ms - 1), "month"
+    try:
+        stamps = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601"))
+    except (ValueError, TypeError):
+        # name the values that parse neither way; if every value parses on its own,
+        # the column mixes kinds: name the values that are not quarter labels
+        is_quarter = q.notna().all(axis=1).to_numpy()
+        is_date = pd.to_datetime(text, format="ISO8601", errors="coerce").notna().to_numpy()
+        bad = np.flatnonzero(~is_quarter & ~is_date)
+        if not len(bad):
+            bad = np.flatnonzero(~is_quarter)
+        example = text.iloc[int(bad[0])]
+        raise DataError(
+            f"{what} {path}: period column '{col}' has values that are not integers, "
+            f"ISO dates (2019-07-01) or quarter labels (2019Q3), e.g. '{example}' at "
+            f"{rows_text(file_rows[bad])}."
+        ) from None
+    return np.asarray(stamps.strftime("%Y-%m-%d"), dtype=object), _rank(stamps.asi8), "date"
+
+
+def _rank(keys: np.ndarray) -> np.ndarray:
+    uniq = np.unique(keys)
+    return np.searchsorted(uniq, keys).astype(np.int64)
+
+
+def to_numeric(frame: pd.DataFrame, col: str, path: Path, file_rows: np.ndarray,
+               what: str = "Data file") -> pd.Series:
+    """Column ``col`` as float64; text that is not a number is an error naming the rows."""
+    s = frame[col]
+    if pd.api.types.is_bool_dtype(s):
+        return s.astype(float)
+    if pd.api.types.is_numeric_dtype(s):
+        return s.astype(float)
+    converted = pd.to_numeric(s, errors="coerce")
+    bad = np.flatnonzero(converted.isna().to_numpy() & s.notna().to_numpy())
+    if len(bad):
+        example = s.iloc[int(bad[0])]
+        hint = ""
+        if isinstance(example, str) and re.fullmatch(r"\s*-?[\d.]+,\d+\s*", example):
+            hint = (" It looks like a decimal comma or thousands separator; convert the file "
+                    "to plain numbers (e.g. 1234.5) first.")
+        raise DataError(
+            f"{what} {path}: column '{col}' must be numeric but has text such as "
+            f"'{example}' at {rows_text(file_rows[bad])}.{hint}"
+        )
+    return converted.astype(float)
+
+
+def file_rows(n: int, path: Path) -> np.ndarray:
+    """Row numbers in the file of data rows ``0..n-1`` (see :func:`file_row`)."""
+    suffix = path.suffix.lower()
+    return np.asarray([file_row(i, suffix) for i in range(n)], dtype=np.int64)
+
+
+def file_sha256(path: Path) -> str:
+    """SHA-256 of the file's bytes."""
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def market_labels(values: pd.Series) -> np.ndarray:
+    """Market identifiers as stripped strings; whole floats lose their ``.0`` (3.0 -> '3')."""
+    mk = values
+    if pd.api.types.is_float_dtype(mk) and np.all(mk == np.round(mk)):
+        mk = mk.astype(np.int64)
+    return mk.astype(str).str.strip().to_numpy(dtype=object)
