@@ -94,9 +94,12 @@ def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
         for key in ("regimes", "groups", "break"):
             if c.get(key):
                 rows.append((key, c[key]["reading"]))
-        costs = summary["costs"]
-        rows.append(("lerner", f"mean {_fmt(costs['lerner_mean'])}; negative costs "
-                               f"{costs['negative_cost_share']:.1%} of rows"))
+        costs = summary.get("costs")
+        if costs:
+            rows.append(("lerner", f"mean {_fmt(costs['lerner_mean'])}; negative costs "
+                                   f"{costs['negative_cost_share']:.1%} of rows"))
+        if c.get("regime_shift"):
+            rows.append(("regimes", c["regime_shift"]["reading"]))
     if d.get("changes_line"):
         rows.append(("new data", d["changes_line"]))
     rows.append(("run folder", str(folder)))

@@ -31,22 +31,29 @@ class Identification:
         One paragraph explaining what identifies theta (or why it is not).
     warnings : tuple of str
         Caveats that do not stop estimation.
+    mode : str
+        ``supply`` (theta from the supply relation with Q*) or ``regime-shift``
+        (conduct relative to a base regime, log demand without rotators).
     """
 
     identified: bool | None
     reason: str
     warnings: tuple[str, ...]
+    mode: str = "supply"
 
 
 def supply_instruments(study: Study) -> tuple[str, ...]:
     """Excluded instruments of the supply relation, by name.
 
     Demand shifters, rotators, shifter x rotator products, then the study's
-    extra supply instruments.
+    extra supply instruments; variables that are also cost shifters are included
+    in the supply relation and therefore not excluded from it.
     """
     d = study.demand
-    names = [*d.shifters, *d.rotators]
-    names += [f"{x}*{r}" for r in d.rotators for x in d.shifters]
+    costs = set(study.supply.cost_shifters) if study.supply is not None else set()
+    names = [c for c in (*d.shifters, *d.rotators) if c not in costs]
+    names += [f"{x}*{r}" for r in d.rotators for x in d.shifters
+              if x not in costs or r not in costs]
     if study.supply is not None:
         names += [c for c in study.supply.instruments if c not in names]
     return tuple(names)
@@ -82,17 +89,7 @@ def check_identification(study: Study) -> Identification:
             "how price-sensitive demand is), or assume constant marginal cost with "
             "cost_slope = false under [supply]."
         )
-    n_endog = 2 if s.cost_slope else 1
     instruments = supply_instruments(study)
-    if len(instruments) < n_endog:
-        endog = "Q* (the markup regressor)" + (" and Q" if s.cost_slope else "")
-        raise IdentificationError(
-            f"Study file {study.path}: the supply relation has {n_endog} endogenous "
-            f"regressor(s), {endog}, but only {len(instruments)} excluded instrument(s) "
-            f"({', '.join(instruments) or 'none'}). Demand shifters and rotators are the "
-            "natural instruments: add them under [demand] shifters/rotators, or list extra "
-            "ones under [supply] instruments."
-        )
     if d.form == "log" and not d.rotators:
         if not s.regimes:
             raise IdentificationError(
@@ -103,13 +100,32 @@ def check_identification(study: Study) -> Identification:
                 "rotators, or name a column of known conduct regimes under [supply] regimes "
                 "(conduct is then compared across regimes, as in Porter 1983)."
             )
-        warnings.append(
-            "Log-linear demand without rotators: theta rests on the functional form of demand "
-            "and on the known regimes; read the per-regime thetas and their difference, not "
-            "the pooled level."
+        if s.cost_slope and not instruments:
+            raise IdentificationError(
+                f"Study file {study.path}: the log supply relation has ln Q as an endogenous "
+                "regressor but no excluded instrument; add a demand shifter that does not "
+                "shift cost, or list one under [supply] instruments."
+            )
+        return Identification(
+            True,
+            f"identified by the known regimes in '{s.regimes}': conduct in each regime "
+            "relative to the base regime, from the regime's price effect in a log supply "
+            "relation (Porter 1983)",
+            ("Log-linear demand without rotators: only conduct relative to the base regime "
+             "(taken as theta = 0) is identified; the level of theta is not.",),
+            mode="regime-shift",
         )
-        reason = "identified through the log-linear functional form and the known regimes"
-    elif d.rotators:
+    n_endog = 2 if s.cost_slope else 1
+    if len(instruments) < n_endog:
+        endog = "Q* (the markup regressor)" + (" and Q" if s.cost_slope else "")
+        raise IdentificationError(
+            f"Study file {study.path}: the supply relation has {n_endog} endogenous "
+            f"regressor(s), {endog}, but only {len(instruments)} excluded instrument(s) "
+            f"({', '.join(instruments) or 'none'}). Demand shifters and rotators are the "
+            "natural instruments: add them under [demand] shifters/rotators, or list extra "
+            "ones under [supply] instruments."
+        )
+    if d.rotators:
         reason = (f"identified by the demand rotation through {', '.join(d.rotators)} "
                   "(Bresnahan 1982; Lau 1982)")
     else:

@@ -20,7 +20,7 @@ from conduct.demand import DemandResult, estimate_demand
 from conduct.derived import Derived, derive
 from conduct.identify import Identification, check_identification
 from conduct.panel import Panel, load_panel
-from conduct.regimes import SplitResult, theta_by
+from conduct.regimes import RegimeShiftResult, SplitResult, regime_shift, theta_by
 from conduct.study import Study, load_study
 from conduct.supply import SupplyResult, estimate_supply
 from conduct.thetaset import ThetaSet, candidate_ar_tests, theta_ar_set
@@ -60,6 +60,8 @@ class Results:
         Candidate name -> (AR statistic, df, p-value), robust to weak instruments.
     regimes, groups : SplitResult or None
         Theta per known regime / per group of markets, when the study asks.
+    regime_shift : RegimeShiftResult or None
+        Conduct relative to a base regime (log demand without rotators; Porter 1983).
     breaks : BreakResult or None
         Sup-Wald test for a break at an unknown date, when the study asks.
     rolling : RollingResult or None
@@ -79,6 +81,7 @@ class Results:
     candidate_ar: dict[str, tuple[float, int, float]]
     regimes: SplitResult | None
     groups: SplitResult | None
+    regime_shift: RegimeShiftResult | None
     breaks: BreakResult | None
     rolling: RollingResult | None
     bootstrap: BootstrapResult | None
@@ -185,7 +188,12 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     ident = check_identification(st)
     panel = load_panel(st)
     demand = estimate_demand(panel, st)
-    supply = estimate_supply(panel, st, demand) if st.supply is not None else None
+    shift = None
+    if ident.mode == "regime-shift" and st.supply is not None and st.supply.regimes:
+        shift = regime_shift(panel, st, demand, st.supply.regimes)
+        supply = None
+    else:
+        supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
     theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
     candidate_ar = (candidate_ar_tests(panel, st, demand, supply)
@@ -211,6 +219,6 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
         derived=derived, theta_set=theta_set, candidate_ar=candidate_ar, regimes=regimes,
-        groups=groups, breaks=breaks,
+        groups=groups, regime_shift=shift, breaks=breaks,
         rolling=rolling, bootstrap=boot, warnings=warnings,
     )

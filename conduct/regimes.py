@@ -19,12 +19,17 @@ from scipy import stats
 from statsmodels.stats.multitest import multipletests
 
 from conduct.demand import DemandResult
+from conduct.design import prepare
 from conduct.errors import DataError
+from conduct.identify import supply_instruments
+from conduct.iv import cluster_cov, fit_iv
 from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import build_system
 
-__all__ = ["GroupTheta", "SplitResult", "theta_by"]
+__all__ = [
+    "GroupTheta", "RegimeShift", "RegimeShiftResult", "SplitResult", "regime_shift", "theta_by",
+]
 
 MIN_ROWS_PER_GROUP = 10  # common practice: fewer rows leave theta unidentified in practice
 
@@ -161,3 +166,112 @@ def theta_by(panel: Panel, study: Study, demand: DemandResult, column: str,
         groups.sort(key=lambda x: (x.p_competitive, -x.theta))
     return SplitResult(kind=kind, column=column, groups=tuple(groups), equality_stat=eq,
                        equality_df=g - 1, equality_p=float(stats.chi2.sf(eq, g - 1)))
+
+
+@dataclass(frozen=True, slots=True)
+class RegimeShift:
+    """Conduct of a regime relative to a base regime, from a log-linear supply relation.
+
+    Attributes
+    ----------
+    label : str
+        The regime.
+    price_effect, price_effect_se : float
+        Coefficient ``b`` of the regime indicator in the log supply relation.
+    theta, se : float
+        ``theta = a (exp(-b) - 1)`` with ``a`` the price elasticity of demand, and
+        its delta-method standard error (joint influence of ``a`` and ``b``).
+    """
+
+    label: str
+    price_effect: float
+    price_effect_se: float
+    theta: float
+    se: float
+
+
+@dataclass(frozen=True, slots=True)
+class RegimeShiftResult:
+    """Porter-style relative conduct for every non-base regime.
+
+    Attributes
+    ----------
+    column, base : str
+    elasticity : float
+        The constant price elasticity ``a`` of the log demand.
+    shifts : tuple of RegimeShift
+    """
+
+    column: str
+    base: str
+    elasticity: float
+    shifts: tuple[RegimeShift, ...]
+
+    def reading(self) -> str:
+        """One sentence per regime."""
+        parts = [f"regime '{s.label}' prices {s.price_effect:+.3f} log points above '{self.base}'"
+                 f" at equal cost and output: theta = {s.theta:.3f} (se {s.se:.3f})"
+                 for s in self.shifts]
+        return "Relative to the base regime, " + "; ".join(parts) + " (Porter 1983)."
+
+
+def regime_shift(panel: Panel, study: Study, demand: DemandResult, column: str
+                 ) -> RegimeShiftResult:
+    """Conduct by regime from log demand and a log supply relation (Porter 1983).
+
+    Supply in logs: ``ln P = c0 + c_q ln Q + c'W + sum_r b_r 1(regime = r) + FE + u``
+    with ``ln Q`` instrumented by the supply instruments.  With constant-elasticity
+    demand ``a`` the first-order condition ``P (1 + theta / a) = MC`` gives
+    ``b_r = -ln(1 + theta_r / a)``, i.e. ``theta_r = a (exp(-b_r) - 1)`` relative to a
+    base regime with theta = 0.
+
+    Parameters
+    ----------
+    panel, study, demand
+        A study with log demand without rotators and a regime column.
+    column : str
+        The regime column; its first value in sorted order is the base.
+
+    Returns
+    -------
+    RegimeShiftResult
+    """
+    assert study.supply is not None
+    codes, labels = _codes(panel, column)
+    f = panel.frame
+    n = len(f)
+    data = {"_lp": np.log(f[study.panel.price].to_numpy(float)),
+            "_lq": np.log(f[study.panel.quantity].to_numpy(float))}
+    for c in study.supply.cost_shifters:
+        data[c] = f[c].to_numpy(float)
+    reg_names = [f"{column}={lab}" for lab in labels[1:]]
+    for g, name in enumerate(reg_names, start=1):
+        data[name] = (codes == g).astype(float)
+    instr = list(supply_instruments(study))
+    for name in instr:
+        data[name] = f[name].to_numpy(float)
+    prep = prepare(f, data, study, stage="supply")
+    cols = prep.columns
+    exog_names = (["const"] if prep.constant else []) + list(study.supply.cost_shifters) \
+        + reg_names
+    exog = np.column_stack(([np.ones(n)] if prep.constant else [])
+                           + [cols[c] for c in exog_names if c != "const"])
+    fit = fit_iv(cols["_lp"], exog, cols["_lq"][:, None],
+                 np.column_stack([cols[c] for c in instr]), (*exog_names, "ln Q"),
+                 cov=prep.cov, overid=False, instrument_names=tuple(instr))
+    price = demand.price_terms[0]
+    i_a = demand.fit.names.index(price)
+    a = float(demand.fit.params[i_a])
+    psi_a = demand.fit.influence[:, i_a]
+    shifts = []
+    for name, label in zip(reg_names, labels[1:], strict=True):
+        j = fit.names.index(name)
+        b = float(fit.params[j])
+        theta = a * (np.exp(-b) - 1.0)
+        grad = np.array([np.exp(-b) - 1.0, -a * np.exp(-b)])
+        psi = np.column_stack([psi_a, fit.influence[:, j]])
+        var = float(grad @ cluster_cov(psi, prep.cov, fit.k) @ grad)
+        shifts.append(RegimeShift(label=label, price_effect=b,
+                                  price_effect_se=float(fit.se[j]), theta=float(theta),
+                                  se=float(np.sqrt(max(var, 0.0)))))
+    return RegimeShiftResult(column=column, base=labels[0], elasticity=a, shifts=tuple(shifts))

@@ -413,10 +413,9 @@ def _check_roles(panel: PanelSpec, demand: DemandSpec, supply: SupplySpec | None
         pairs += [
             ("supply.instruments", supply.instruments, "supply.cost_shifters",
              supply.cost_shifters),
-            ("supply.cost_shifters", supply.cost_shifters, "demand.shifters and "
-             "demand.rotators (the supply relation's excluded instruments)",
-             demand.shifters + demand.rotators),
         ]
+        # A variable may shift both demand and cost (seasonal dummies, say): it is then
+        # included in both equations and simply not used as a supply instrument.
     for where, cols, other, other_cols in pairs:
         both = [c for c in cols if c in other_cols]
         if both:

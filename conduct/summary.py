@@ -12,6 +12,7 @@ import math
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from conduct.pipeline import Results
 from conduct.regimes import SplitResult
@@ -46,6 +47,42 @@ def _ar_fields(ar: tuple[float, int, float] | None) -> dict[str, Any]:
     if ar is None:
         return {"ar_stat": None, "ar_df": None, "ar_p": None}
     return {"ar_stat": ar[0], "ar_df": ar[1], "ar_p": ar[2]}
+
+
+def _regime_shift_section(res: Results) -> dict[str, Any]:
+    """The conduct section when conduct is identified by known regimes only."""
+    rs = res.regime_shift
+    assert rs is not None
+    level = res.study.inference.level
+    z = float(stats.norm.ppf(0.5 + level / 2))
+    first = rs.shifts[0]
+    tests = {}
+    for c in res.study.candidates:
+        if c.theta is None:
+            continue
+        stat = ((first.theta - c.theta) / first.se) ** 2
+        p = float(stats.chi2.sf(stat, 1))
+        tests[c.name] = {"stat": stat, "p": p, "rejected": p < 1 - level,
+                         "null": f"{c.name}: theta = {c.theta:g} in regime '{first.label}'",
+                         "ar_stat": None, "ar_df": None, "ar_p": None}
+    kept = [k for k, v in tests.items() if not v["rejected"]]
+    return {
+        "mode": "regime-shift",
+        "theta": first.theta, "se": first.se,
+        "ci": [first.theta - z * first.se, first.theta + z * first.se],
+        "level": level, "ar_set": None, "tests": tests,
+        "verdict": kept[0] if len(kept) == 1 else "inconclusive",
+        "not_rejected": kept, "identified": True,
+        "identification": res.identification.reason,
+        "cournot_benchmark": None,
+        "regime_shift": {
+            "column": rs.column, "base": rs.base, "elasticity": rs.elasticity,
+            "reading": rs.reading(),
+            "regimes": [{"label": x.label, "price_effect": x.price_effect,
+                         "price_effect_se": x.price_effect_se, "theta": x.theta, "se": x.se}
+                        for x in rs.shifts],
+        },
+    }
 
 
 def _split(split: SplitResult | None) -> dict[str, Any] | None:
@@ -208,6 +245,8 @@ def build_summary(res: Results) -> dict[str, Any]:
             "negative_cost_share": res.derived.negative_cost_share["estimated"],
             "negative_cost_share_by_model": res.derived.negative_cost_share,
         }
+    if res.regime_shift is not None:
+        conduct = _regime_shift_section(res)
     summary = {
         "title": res.study.title,
         "data": {
