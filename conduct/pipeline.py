@@ -18,7 +18,9 @@ from conduct.bootstrap import BootstrapResult, cluster_bootstrap
 from conduct.breaks import BreakResult, RollingResult, rolling_theta, sup_wald_break
 from conduct.demand import DemandResult, estimate_demand
 from conduct.derived import Derived, derive
+from conduct.errors import ConductError
 from conduct.identify import Identification, check_identification
+from conduct.menu import MenuResult, menu_test
 from conduct.panel import Panel, load_panel
 from conduct.regimes import RegimeShiftResult, SplitResult, regime_shift, theta_by
 from conduct.study import Study, load_study
@@ -60,6 +62,8 @@ class Results:
         Candidate name -> (AR statistic, df, p-value), robust to weak instruments.
     regimes, groups : SplitResult or None
         Theta per known regime / per group of markets, when the study asks.
+    menu : MenuResult or None
+        Rivers-Vuong menu test of the candidate models.
     regime_shift : RegimeShiftResult or None
         Conduct relative to a base regime (log demand without rotators; Porter 1983).
     breaks : BreakResult or None
@@ -82,6 +86,7 @@ class Results:
     regimes: SplitResult | None
     groups: SplitResult | None
     regime_shift: RegimeShiftResult | None
+    menu: MenuResult | None
     breaks: BreakResult | None
     rolling: RollingResult | None
     bootstrap: BootstrapResult | None
@@ -195,6 +200,14 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
     else:
         supply = estimate_supply(panel, st, demand) if st.supply is not None else None
     derived = derive(panel, st, demand, supply)
+    menu, menu_note = None, None
+    if supply is not None and st.supply is not None:
+        sets = ({"supply instruments": supply.instruments, **dict(st.supply.instrument_sets)}
+                if st.supply.instrument_sets else None)
+        try:
+            menu = menu_test(panel, st, demand, supply, instrument_sets=sets)
+        except ConductError as exc:
+            menu_note = f"Menu test not run: {exc}"
     theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
     candidate_ar = (candidate_ar_tests(panel, st, demand, supply)
                     if supply is not None else {})
@@ -213,12 +226,20 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
         boot = cluster_bootstrap(panel, st, replications=st.inference.bootstrap,
                                  seed=st.inference.seed, quiet=quiet)
     warnings = _warnings(panel, ident, demand, supply, st)
+    if menu_note:
+        warnings += (menu_note,)
+    if menu is not None:
+        weak = [f"{p.a} vs {p.b}" + (f" [{ms.name}]" if len(menu.sets) > 1 else "")
+                + f" (F = {p.f:.2f})" for ms in menu.sets for p in ms.pairs if p.weak]
+        if weak:
+            warnings += ("Weak instruments for testing " + ", ".join(weak)
+                         + ": the menu test has little power there.",)
     if boot is not None and boot.failures:
         warnings += (f"{boot.failures} of {boot.replications} bootstrap replicates could not "
                      "be estimated and were left out.",)
     return Results(
         study=st, panel=panel, identification=ident, demand=demand, supply=supply,
         derived=derived, theta_set=theta_set, candidate_ar=candidate_ar, regimes=regimes,
-        groups=groups, regime_shift=shift, breaks=breaks,
+        groups=groups, regime_shift=shift, menu=menu, breaks=breaks,
         rolling=rolling, bootstrap=boot, warnings=warnings,
     )

@@ -10,6 +10,7 @@ Nothing in a study file is ever evaluated as code.
 from __future__ import annotations
 
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, get_args
@@ -108,6 +109,8 @@ class SupplySpec:
         Search for one break in theta at an unknown date (sup-Wald).
     rolling_window : int
         Periods per rolling window for monitoring theta (0: off).
+    instrument_sets : tuple of (str, tuple of str)
+        Named alternative instrument sets for the menu test (``a*b`` for products).
     """
 
     cost_shifters: tuple[str, ...] = ()
@@ -117,6 +120,7 @@ class SupplySpec:
     groups: str | None = None
     break_test: bool = False
     rolling_window: int = 0
+    instrument_sets: tuple[tuple[str, tuple[str, ...]], ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -193,6 +197,8 @@ class Study:
         if self.supply is not None:
             names += [*self.supply.cost_shifters, *self.supply.instruments, self.supply.regimes,
                       self.supply.groups]
+            names += [part for _, cols in self.supply.instrument_sets for c in cols
+                      for part in c.split("*")]
         out: list[str] = []
         for n in names:
             if n and n not in out:
@@ -309,12 +315,32 @@ def _supply(t: dict[str, Any], file: Path) -> SupplySpec:
         groups=r.get("groups", r.opt_string, None),
         break_test=r.get("break_test", r.boolean, False),
         rolling_window=r.get("rolling_window", r.integer, 0),
+        instrument_sets=r.get("instrument_sets", _instrument_sets(r), ()),
     )
     r.finish()
     if spec.rolling_window < 0 or spec.rolling_window == 1:
         raise r.fail("rolling_window", f"must be 0 (off) or a number of periods >= 2, got "
                      f"{spec.rolling_window}.")
     return spec
+
+
+InstrumentSets = tuple[tuple[str, tuple[str, ...]], ...]
+
+
+def _instrument_sets(r: TableReader) -> Callable[[Any, str], InstrumentSets]:
+    def conv(value: Any, key: str) -> InstrumentSets:
+        if not isinstance(value, dict) or not value:
+            raise r.fail(key, "must be a table of named lists of instruments, e.g. "
+                              '[supply.instrument_sets] rotation = ["winter_severity"].')
+        out = []
+        for name, cols in value.items():
+            items = r.strings(cols, f"{key}.{name}")
+            if not items:
+                raise r.fail(f"{key}.{name}", "is empty; list at least one instrument.")
+            out.append((str(name), items))
+        return tuple(out)
+
+    return conv
 
 
 def _candidates(t: dict[str, Any] | None, file: Path) -> tuple[Candidate, ...]:

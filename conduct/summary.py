@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from conduct.menu import MenuResult, PairTest
 from conduct.pipeline import Results
 from conduct.regimes import SplitResult
 
@@ -41,6 +42,25 @@ def clean(value: Any) -> Any:
     if isinstance(value, float) and not math.isfinite(value):
         return None
     return value
+
+
+def _pairs(ps: tuple[PairTest, ...]) -> list[dict[str, Any]]:
+    return [{"a": p.a, "b": p.b, "t_rv": p.t_rv, "p": p.p, "f": p.f, "weak": p.weak,
+             "better": p.better, "rho": p.rho, "q_a": p.q_a, "q_b": p.q_b,
+             "size_bound": p.size_bound, "power_bound": p.power_bound} for p in ps]
+
+
+def _menu(menu: MenuResult | None) -> dict[str, Any] | None:
+    if menu is None:
+        return None
+    return {
+        "pairs": _pairs(menu.pairs), "best": list(menu.best), "reading": menu.reading(),
+        "level": menu.level, "observations": menu.observations, "skipped": list(menu.skipped),
+        "sets": [{"name": s.name, "instruments": list(s.instruments), "df": s.df,
+                  "best": list(s.best), "lack_of_fit": s.lack_of_fit,
+                  "reading": s.reading(menu.level), "pairs": _pairs(s.pairs)}
+                 for s in menu.sets],
+    }
 
 
 def _ar_fields(ar: tuple[float, int, float] | None) -> dict[str, Any]:
@@ -266,7 +286,7 @@ def build_summary(res: Results) -> dict[str, Any]:
         },
         "demand": demand,
         "conduct": conduct,
-        "menu": None,
+        "menu": _menu(res.menu),
         "costs": costs,
         "warnings": list(res.warnings),
         "caution": CAUTION,

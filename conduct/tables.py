@@ -206,17 +206,19 @@ def menu_table(res: Results, summary: Mapping[str, Any] | None = None) -> pd.Dat
     Returns
     -------
     pandas.DataFrame or None
-        Columns a, b, t_rv, p, f and best (both models of the pair among the
-        models not beaten); None while the menu test is not run.
+        Columns a, b, t_rv, p, f, weak (instruments weak for testing), better
+        (the model favoured) and best (both models of the pair among the models
+        not beaten); None while the menu test is not run.
     """
     menu = (summary or {}).get("menu")
     if not menu:
         return None
     best = set(menu.get("best") or [])
     rows = [{"a": p["a"], "b": p["b"], "t_rv": p.get("t_rv"), "p": p.get("p"),
-             "f": p.get("f"), "best": p["a"] in best and p["b"] in best}
+             "f": p.get("f"), "weak": p.get("weak"), "better": p.get("better"),
+             "best": p["a"] in best and p["b"] in best}
             for p in menu.get("pairs") or []]
-    return pd.DataFrame(rows, columns=["a", "b", "t_rv", "p", "f", "best"])
+    return pd.DataFrame(rows, columns=["a", "b", "t_rv", "p", "f", "weak", "better", "best"])
 
 
 # ----------------------------------------------------------------------------------------

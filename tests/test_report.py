@@ -160,14 +160,14 @@ def test_csv_tables_have_their_columns(run: Run) -> None:
     assert costs["negative_cost_share"].between(0, 1).all()
 
 
-def test_menu_table_is_left_out_until_the_menu_test_runs(run: Run) -> None:
-    assert run.summary["menu"] is None
-    assert not (run.folder / "menu_tests.csv").exists()
-    menu = {"pairs": [{"a": "cournot", "b": "collusive", "t_rv": -3.1, "p": 0.002,
-                       "f": 25.0}], "best": ["cournot"]}
-    built = tables.build_tables(run.results, {**run.summary, "menu": menu})
-    assert list(built["menu_tests"].columns) == ["a", "b", "t_rv", "p", "f", "best"]
-    tex = tables.tables_tex(built)
+def test_menu_table_follows_the_menu_test(run: Run) -> None:
+    assert run.summary["menu"] is not None
+    table = pd.read_csv(run.folder / "menu_tests.csv")
+    assert list(table.columns) == ["a", "b", "t_rv", "p", "f", "weak", "better", "best"]
+    assert len(table) == len(run.summary["menu"]["pairs"])
+    built = tables.build_tables(run.results, {**run.summary, "menu": None})
+    assert "menu_tests" not in built or built["menu_tests"] is None
+    tex = tables.tables_tex(tables.build_tables(run.results, run.summary))
     assert r"\label{tab:menu_tests}" in tex
 
 
@@ -188,7 +188,8 @@ def test_tables_tex_is_well_formed(run: Run) -> None:
     unescaped = re.sub(r"\\[{}]", "", body)
     assert unescaped.count("{") == unescaped.count("}")
     n_tables = body.count(r"\begin{table}")
-    assert n_tables == len(EXPECTED_CSV) + (run.folder / "overidentification.csv").exists()
+    assert n_tables == len(EXPECTED_CSV) + (run.folder / "overidentification.csv").exists() \
+        + (run.folder / "menu_tests.csv").exists()
     for rule in (r"\toprule", r"\midrule", r"\bottomrule"):
         assert body.count(rule) == n_tables, rule
     text = re.sub(r"\\label\{[\w:-]+\}", "", body)  # labels may hold underscores
@@ -275,7 +276,7 @@ def test_report_states_verdict_menu_and_placeholders(run: Run) -> None:
     c = run.summary["conduct"]
     assert f"At the {c['level']:.0%} level the data" in html
     assert f"{c['theta']:.3f}" in html
-    assert "Not run" in html
+    assert run.summary["menu"]["reading"].split(";")[0] in html
     assert "No regimes or breaks analysed." in html
     assert "No previous run" in html
     assert "test-run" in html and "conduct estimate" in html
