@@ -191,8 +191,8 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
         if len(endog) > 1:
             ar_note = ("several endogenous regressors (price x rotator terms): the set is "
                        "reported for theta, not for the price coefficient")
-        elif prep.cov.kind == "hac":
-            ar_note = "not available with Newey-West errors"
+        elif prep.cov.kind == "hac" or prep.cov.clusters2 is not None:
+            ar_note = "not available with Newey-West or two-way clustered errors"
         else:
             try:
                 ar_set = anderson_rubin_set(

@@ -52,6 +52,55 @@ def codes(values: pd.Series | np.ndarray) -> np.ndarray:
     return np.unique(np.asarray(values), return_inverse=True)[1].astype(np.int64)
 
 
+def _nested(groups: np.ndarray, clusters: np.ndarray) -> bool:
+    """True when every group lies inside a single cluster."""
+    pairs = np.unique(np.column_stack([groups, clusters]), axis=0)
+    return len(pairs) == int(groups.max()) + 1
+
+
+def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand"
+                  ) -> tuple[np.ndarray, np.ndarray | None]:
+    """Cluster codes of the rows for each cluster dimension of the study.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        The rows (with ``_market`` and ``_t``).
+    study : Study
+    stage : str
+        For messages.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray or None)
+        First and (for two-way clustering) second dimension.
+
+    Raises
+    ------
+    EstimationError
+        When a dimension has a single cluster.
+    """
+    dims = study.demand.cluster or ("market",)
+    out = []
+    for name in dims:
+        col = {"market": MARKET, "period": TIME}.get(name, name)
+        c = codes(frame[col].astype(str).to_numpy() if col not in (MARKET, TIME)
+                  else frame[col].to_numpy())
+        if int(c.max()) + 1 < 2:
+            if name == "market":
+                raise EstimationError(
+                    f"The {stage} stage asks for cluster-robust errors by market, but the "
+                    "panel has a single market. Use errors = \"robust\" or, for one market's "
+                    "time series, errors = \"hac\" (Newey-West) under [demand]."
+                )
+            raise EstimationError(
+                f"The {stage} stage clusters by '{name}', which has a single value in the "
+                "rows used; choose another cluster dimension or errors = \"robust\"."
+            )
+        out.append(c)
+    return out[0], (out[1] if len(out) > 1 else None)
+
+
 def prepare(
     frame: pd.DataFrame,
     data: dict[str, np.ndarray],
@@ -86,24 +135,17 @@ def prepare(
     if not groups:
         # absorb() with no groups demeans (the intercept); keep raw columns and add a constant
         columns = {k: np.asarray(data[k], dtype=float) for k in names}
-    n_markets = int(markets.max()) + 1
     errors = study.demand.errors
-    if errors == "cluster" and n_markets < 2:
-        raise EstimationError(
-            f"The {stage} stage asks for cluster-robust errors by market, but the panel has "
-            "a single market. Use errors = \"robust\" or, for one market's time series, "
-            "errors = \"hac\" (Newey-West) under [demand]."
-        )
+    c1, c2 = cluster_codes(frame, study, stage) if errors == "cluster" else (None, None)
     penalty = absorbed.df_absorbed if groups else 0
-    if errors == "cluster" and "market" in effects:
-        # market effects are nested in market clusters and are not counted
-        penalty -= n_markets
+    if errors == "cluster":
+        # absorbed effects nested in a cluster dimension are not counted
+        dims = [c for c in (c1, c2) if c is not None]
+        for name, g in (("market", markets), ("period", periods)):
+            if name in effects and any(_nested(g, c) for c in dims):
+                penalty -= int(g.max()) + 1
         penalty = max(penalty, 0)
-    cov = CovSpec(
-        kind=errors,
-        clusters=markets if errors == "cluster" else None,
-        hac_lags=study.demand.hac_lags,
-        df_penalty=penalty,
-    )
+    cov = CovSpec(kind=errors, clusters=c1, hac_lags=study.demand.hac_lags,
+                  df_penalty=penalty, clusters2=c2)
     return Prepared(columns=columns, constant=not groups, absorbed=absorbed, cov=cov,
                     markets=markets)

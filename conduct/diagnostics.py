@@ -81,6 +81,8 @@ class Strength:
 
 
 def _weakiv_cov(cov: CovSpec) -> str | None:
+    if cov.clusters2 is not None:
+        return None  # two-way clustering: computed here with the covariance of conduct.iv
     return cov.kind if cov.kind in ("homoskedastic", "robust", "cluster") else None
 
 
@@ -180,9 +182,15 @@ def stage_strength(
                     reading=reading)
 
 
+def _cov_words(cov: CovSpec, n: int) -> str:
+    if cov.kind == "hac":
+        return f"Newey-West ({cov.lags(n)} lags)"
+    return "two-way cluster-robust (Cameron, Gelbach & Miller 2011)"
+
+
 def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
                names: tuple[str, ...], cov: CovSpec) -> tuple[FirstStage, ...]:
-    """First-stage Wald/k with the Newey-West covariance of :mod:`conduct.iv`."""
+    """First-stage Wald/k with the HAC or two-way cluster covariance of :mod:`conduct.iv`."""
     n, k = instruments.shape
     x = np.column_stack([exog, instruments])
     kx = x.shape[1]
@@ -205,8 +213,8 @@ def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
         r2 = float(fitted @ fitted / (pe[:, j] @ pe[:, j]))
         out.append(FirstStage(name=name, f=f, p=float(stats.f.sf(f, k, dof)), df=(k, dof),
                               partial_r2=r2,
-                              convention=f"Wald/k with Newey-West ({cov.lags(n)} lags) "
-                                         f"covariance, n/({dof}) factor"))
+                              convention=f"Wald/k with {_cov_words(cov, n)} covariance, "
+                                         f"{dof} residual degrees of freedom"))
     return tuple(out)
 
 

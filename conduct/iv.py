@@ -50,12 +50,32 @@ class CovSpec:
         Bartlett bandwidth for ``hac``; None picks ``floor(4 (n/100)^(2/9))``.
     df_penalty : int
         Absorbed parameters counted in the small-sample factor.
+    clusters2 : numpy.ndarray or None
+        (n,) second cluster dimension for two-way clustering (Cameron, Gelbach &
+        Miller 2011): ``V = V_1 + V_2 - V_12``, each with its own G/(G-1) factor.
     """
 
     kind: CovType
     clusters: np.ndarray | None = None
     hac_lags: int | None = None
     df_penalty: int = 0
+    clusters2: np.ndarray | None = None
+
+    def cluster_terms(self) -> list[tuple[np.ndarray, float]]:
+        """(codes, sign) of each clustering whose sandwich enters the covariance."""
+        if self.clusters is None:
+            raise ValueError("cluster covariance needs clusters")
+        c1 = np.unique(self.clusters, return_inverse=True)[1]
+        if self.clusters2 is None:
+            return [(c1, 1.0)]
+        c2 = np.unique(self.clusters2, return_inverse=True)[1]
+        both = np.unique(c1.astype(np.int64) * (int(c2.max()) + 1) + c2,
+                         return_inverse=True)[1]
+        return [(c1, 1.0), (c2, 1.0), (both, -1.0)]
+
+    def n_clusters(self) -> int:
+        """Smallest number of clusters over the cluster dimensions."""
+        return min(int(c.max()) + 1 for c, sign in self.cluster_terms() if sign > 0)
 
     def lags(self, n: int) -> int:
         """Bartlett bandwidth used for ``n`` observations."""
@@ -153,6 +173,11 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
     if cov.kind == "robust":
         return f"heteroskedasticity-robust HC1: n/({dof}) x HC0"
     if cov.kind == "cluster":
+        if cov.clusters2 is not None:
+            gs = [int(c.max()) + 1 for c, _ in cov.cluster_terms()]
+            return (f"two-way cluster-robust ({gs[0]} x {gs[1]} clusters; Cameron, Gelbach & "
+                    f"Miller 2011): V1 + V2 - V12, each G/(G-1) x (n-1)/({dof}) x sandwich "
+                    "(absorbed effects nested in clusters not counted)")
         g = len(np.unique(cov.clusters)) if cov.clusters is not None else 0
         return (f"cluster-robust, {g} clusters: G/(G-1) x (n-1)/({dof}) x sandwich "
                 "(absorbed effects nested in clusters not counted)")
@@ -180,14 +205,18 @@ def cluster_cov(psi: np.ndarray, cov: CovSpec, k: int) -> np.ndarray:
     if dof <= 0:
         raise EstimationError(f"No residual degrees of freedom (n = {n}, parameters {k}).")
     if cov.kind == "cluster":
-        if cov.clusters is None:
-            raise ValueError("cluster covariance needs clusters")
-        codes = np.unique(cov.clusters, return_inverse=True)[1]
-        g = int(codes.max()) + 1
-        sums = np.zeros((g, psi.shape[1]))
-        np.add.at(sums, codes, psi)
-        meat = sums.T @ sums
-        factor = g / (g - 1) * (n - 1) / dof
+        out = np.zeros((psi.shape[1], psi.shape[1]))
+        for codes, sign in cov.cluster_terms():
+            g = int(codes.max()) + 1
+            sums = np.zeros((g, psi.shape[1]))
+            np.add.at(sums, codes, psi)
+            out += sign * (g / (g - 1) * (n - 1) / dof) * (sums.T @ sums)
+        if cov.clusters2 is not None:
+            # V1 + V2 - V12 need not be positive semi-definite; clip negative eigenvalues
+            # to zero (Cameron, Gelbach & Miller 2011, sec. 2.3)
+            vals, vecs = np.linalg.eigh((out + out.T) / 2)
+            out = (vecs * np.clip(vals, 0.0, None)) @ vecs.T
+        return out / n**2
     elif cov.kind == "hac":
         meat = psi.T @ psi
         for lag in range(1, cov.lags(n) + 1):
@@ -230,6 +259,8 @@ def influence_2sls(x: np.ndarray, z: np.ndarray, e: np.ndarray,
 
 def _lm_kwargs(cov: CovSpec, n: int) -> dict[str, object]:
     if cov.kind == "cluster":
+        if cov.clusters2 is not None:
+            return {"clusters": np.column_stack([cov.clusters, cov.clusters2])}
         return {"clusters": cov.clusters}
     if cov.kind == "hac":
         return {"kernel": "bartlett", "bandwidth": cov.lags(n)}
@@ -320,7 +351,7 @@ def fit_iv(
         lm_cov_mat = np.asarray(res.cov, dtype=float)
         kappa = float(getattr(res, "kappa", 1.0) or 1.0)
         j_stat = j_p = None
-        if kz > ke and overid and _enough_clusters(cov, kx + kz):
+        if kz > ke and overid and _enough_clusters(cov, kx + kz) and cov.clusters2 is None:
             gmm = res if estimator == "gmm" else _fit_gmm(y, ex, endog, instruments, cov,
                                                           lm_cov, kwargs)
             j_stat, j_p = float(gmm.j_stat.stat), float(gmm.j_stat.pval)
@@ -331,6 +362,8 @@ def fit_iv(
         factor = base / (base - cov.df_penalty)
     covm = lm_cov_mat * factor
     psi = influence_2sls(x, z, resid, weight)
+    if cov.clusters2 is not None and estimator == "2sls":
+        covm = cluster_cov(psi, cov, k)  # same sandwich, with negative eigenvalues clipped
     return IVFit(
         names=tuple(names),
         params=params,
@@ -400,14 +433,19 @@ def fit_2sls_arrays(y: np.ndarray, x: np.ndarray, z: np.ndarray, names: tuple[st
 def _enough_clusters(cov: CovSpec, moments: int) -> bool:
     if cov.kind != "cluster" or cov.clusters is None:
         return True
-    return len(np.unique(cov.clusters)) > moments
+    return cov.n_clusters() > moments
 
 
 def _fit_gmm(y: np.ndarray, ex: np.ndarray | None, endog: np.ndarray, instr: np.ndarray,
              cov: CovSpec, lm_cov: str, kwargs: dict[str, object]) -> Any:
     moments = (0 if ex is None else ex.shape[1]) + instr.shape[1]
+    if cov.clusters2 is not None:
+        raise EstimationError(
+            "Efficient GMM with a two-way clustered weight matrix is not available; use "
+            "estimator = \"2sls\" or \"liml\" with two-way clustered errors."
+        )
     if not _enough_clusters(cov, moments):
-        g = len(np.unique(cov.clusters)) if cov.clusters is not None else 0
+        g = cov.n_clusters() if cov.clusters is not None else 0
         raise EstimationError(
             f"Efficient GMM with cluster-robust weights needs more clusters ({g}) than "
             f"moment conditions ({moments}); use estimator = \"2sls\" or fewer instruments."

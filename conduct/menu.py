@@ -42,11 +42,11 @@ import pandas as pd
 from scipy import stats
 
 from conduct.demand import DemandResult
-from conduct.design import codes, prepare
+from conduct.design import cluster_codes, prepare
 from conduct.errors import DataError, EstimationError
 from conduct.iv import CovSpec
 from conduct.menu_stats import LackOfFit, lack_of_fit, orthonormal, pair_stats, weak_bounds
-from conduct.panel import MARKET, Panel
+from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import SupplyResult
 
@@ -327,10 +327,9 @@ def menu_test(
         prep.constant or s.cost_shifters) else np.zeros((n, 0))
     resid = {k: _residualise(v, w) for k, v in cols.items() if k not in s.cost_shifters}
     k_small = w.shape[1] + (1 if s.cost_slope else 0)
-    cov = CovSpec(kind=prep.cov.kind,
-                  clusters=codes(f[MARKET].to_numpy()) if prep.cov.clusters is not None
-                  else None,
-                  hac_lags=prep.cov.hac_lags, df_penalty=prep.cov.df_penalty)
+    c1, c2 = cluster_codes(f, study) if prep.cov.kind == "cluster" else (None, None)
+    cov = CovSpec(kind=prep.cov.kind, clusters=c1, hac_lags=prep.cov.hac_lags,
+                  df_penalty=prep.cov.df_penalty, clusters2=c2)
     psi_d = demand.fit.influence
     alpha = 1.0 - study.inference.level
 

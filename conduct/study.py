@@ -78,7 +78,12 @@ class PanelSpec:
 
 @dataclass(frozen=True, slots=True)
 class DemandSpec:
-    """The demand equation and how to estimate it."""
+    """The demand equation and how to estimate it.
+
+    ``cluster`` names the cluster dimensions for ``errors = "cluster"``: empty means
+    by market; ``["market", "period"]`` clusters two ways; any other name is a column.
+    The same covariance choice applies to every stage.
+    """
 
     instruments: tuple[str, ...]
     form: Form = "linear"
@@ -88,6 +93,7 @@ class DemandSpec:
     estimator: Estimator = "2sls"
     errors: Errors = "cluster"
     hac_lags: int | None = None
+    cluster: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -193,6 +199,7 @@ class Study:
             *self.demand.shifters,
             *self.demand.rotators,
             *self.demand.instruments,
+            *[c for c in self.demand.cluster if c not in ("market", "period")],
         ]
         if self.supply is not None:
             names += [*self.supply.cost_shifters, *self.supply.instruments, self.supply.regimes,
@@ -207,7 +214,7 @@ class Study:
 
     def numeric_columns(self) -> tuple[str, ...]:
         """Columns that must hold numbers (everything except keys and regimes)."""
-        keys = {self.panel.market, self.panel.period}
+        keys = {self.panel.market, self.panel.period, *self.demand.cluster}
         if self.supply is not None:
             keys.update(c for c in (self.supply.regimes, self.supply.groups) if c)
         return tuple(c for c in self.columns() if c not in keys)
@@ -288,8 +295,15 @@ def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
         estimator=r.get("estimator", r.choice(get_args(Estimator)), "2sls"),
         errors=r.get("errors", r.choice(get_args(Errors)), "cluster"),
         hac_lags=r.get("hac_lags", r.integer, None),
+        cluster=r.get("cluster", r.strings, ()),
     )
     r.finish()
+    if len(spec.cluster) > 2:
+        raise r.fail("cluster", f"lists {len(spec.cluster)} dimensions; at most two "
+                     "(e.g. [\"market\", \"period\"]) are supported.")
+    if spec.cluster and spec.errors != "cluster":
+        raise r.fail("cluster", f"is set but errors = \"{spec.errors}\"; set errors = "
+                     "\"cluster\" to cluster.")
     if not spec.instruments:
         raise r.fail("instruments", "is empty: price is endogenous and needs at least one "
                      "excluded instrument (typically a cost shifter).")

@@ -26,12 +26,12 @@ import pandas as pd
 from scipy import stats
 
 from conduct.demand import DemandResult
-from conduct.design import Prepared, codes, prepare
+from conduct.design import Prepared, cluster_codes, prepare
 from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
 from conduct.iv import CovSpec, IVFit, check_design, cluster_cov, fit_iv
-from conduct.panel import MARKET, Panel
+from conduct.panel import Panel
 from conduct.study import Candidate, Study
 
 __all__ = ["CandidateTest", "SupplyResult", "benchmark_h", "estimate_supply"]
@@ -348,9 +348,9 @@ def build_system(
     w = np.linalg.inv(z.T @ z / n)
     a_mat = np.linalg.solve(gmat.T @ w @ gmat, gmat.T @ w)
     cov_full = prep.cov
-    clusters_full = codes(f[MARKET].to_numpy()) if cov_full.clusters is not None else None
-    full_cov = CovSpec(kind=cov_full.kind, clusters=clusters_full, hac_lags=cov_full.hac_lags,
-                       df_penalty=cov_full.df_penalty)
+    c1, c2 = cluster_codes(f, study) if cov_full.kind == "cluster" else (None, None)
+    full_cov = CovSpec(kind=cov_full.kind, clusters=c1, hac_lags=cov_full.hac_lags,
+                       df_penalty=cov_full.df_penalty, clusters2=c2)
     return SupplySystem(
         rows=rows, names=names, theta_index=tuple(names.index(c) for c in qnames),
         labels=labels, group=group, qstar=qstar, dqstar=dqstar, h=h, prepared=prep,

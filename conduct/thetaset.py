@@ -28,9 +28,9 @@ import numpy as np
 from scipy import optimize, stats
 
 from conduct.demand import DemandResult
-from conduct.design import codes
+from conduct.design import cluster_codes
 from conduct.iv import CovSpec
-from conduct.panel import MARKET, Panel
+from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import QSTAR, SupplyResult, benchmark_h
 
@@ -111,10 +111,10 @@ class _Linear:
         resid = [y - r @ p for y, p in zip(ys, self.pi, strict=True)]
         g_alpha = -(rtr_inv @ (r.T @ dqstar) / n)  # d pi / d alpha per unit theta0
         psi_d = demand.fit.influence
-        markets = codes(panel.frame[MARKET].to_numpy())
-        self.cov = CovSpec(kind=prep.cov.kind, clusters=markets if prep.cov.kind == "cluster"
-                           else None, hac_lags=prep.cov.hac_lags,
-                           df_penalty=prep.cov.df_penalty)
+        c1, c2 = (cluster_codes(panel.frame, study) if prep.cov.kind == "cluster"
+                  else (None, None))
+        self.cov = CovSpec(kind=prep.cov.kind, clusters=c1, hac_lags=prep.cov.hac_lags,
+                           df_penalty=prep.cov.df_penalty, clusters2=c2)
         self.n_all = n_all
         # full-sample influence pieces: psi = A0 + theta0 A1 + c A2
         pieces = []
@@ -124,27 +124,30 @@ class _Linear:
             if j == 1:
                 a += psi_d @ g_alpha.T
             pieces.append(a)
-        self.sums = [self._cluster_sums(a) for a in pieces]
         dof = n_all - self.kr - self.cov.df_penalty
+        # each clustering (or the observations themselves) with its signed factor
         if self.cov.kind == "cluster":
-            g = int(markets.max()) + 1
-            self.factor = g / (g - 1) * (n_all - 1) / dof / n_all**2
-        else:
-            self.factor = n_all / dof / n_all**2
+            terms = [(c, sign * (int(c.max()) + 1) / int(c.max()) * (n_all - 1) / dof)
+                     for c, sign in self.cov.cluster_terms()]
+        else:  # robust and homoskedastic treated as robust; HAC treated as robust
+            terms = [(np.arange(n_all), n_all / dof)]
+        self.terms = []
+        for c, factor in terms:
+            g = int(c.max()) + 1
+            sums = []
+            for a in pieces:
+                out = np.zeros((g, self.kr))
+                np.add.at(out, c, a)
+                sums.append(out)
+            self.terms.append((factor / n_all**2, sums))
         self.nuisance = bool(study.supply.cost_slope)
-
-    def _cluster_sums(self, a: np.ndarray) -> np.ndarray:
-        if self.cov.kind == "cluster":
-            assert self.cov.clusters is not None
-            out = np.zeros((int(self.cov.clusters.max()) + 1, a.shape[1]))
-            np.add.at(out, self.cov.clusters, a)
-            return out
-        return a  # robust/homoskedastic: observation-level sums (HAC treated as robust)
 
     def stat(self, theta0: float, c: float) -> float:
         pi = self.pi[0] + theta0 * self.pi[1] + c * self.pi[2]
-        s = self.sums[0] + theta0 * self.sums[1] + c * self.sums[2]
-        v = self.factor * (s.T @ s)
+        v = np.zeros((self.kr, self.kr))
+        for factor, sums in self.terms:
+            s = sums[0] + theta0 * sums[1] + c * sums[2]
+            v += factor * (s.T @ s)
         pz = pi[-self.kz:]
         vz = v[-self.kz:, -self.kz:]
         return float(pz @ np.linalg.solve(vz, pz))
