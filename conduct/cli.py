@@ -125,7 +125,8 @@ def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
             f"--alert break needs the break test: set break_test = true under [supply] in "
             f"{study.path}."
         )
-    res = estimate(study, quiet=args.quiet or args.json)
+    res = estimate(study, quiet=args.quiet or args.json, workers=args.workers,
+                   scheduler=args.scheduler)
     folder, summary = write_run(res, label=args.label, argv=["conduct", *argv], alerts=specs)
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
@@ -212,6 +213,24 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_power(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from conduct.executor import make_mapper
+    from conduct.power import power_analysis, write_power
+    from conduct.study import load_study
+
+    study = load_study(args.study)
+    quiet = args.quiet or args.json
+    mapper = make_mapper(args.workers, args.scheduler, quiet=quiet, label="power")
+    res = power_analysis(study, replications=args.replications, seed=args.seed, mapper=mapper)
+    folder = write_power(res, label=args.label, argv=["conduct", *argv])
+    if args.json:
+        print((folder / "power.json").read_text(encoding="utf-8"), end="")
+    elif not args.quiet:
+        print(res.text())
+        print(f"written to {folder}")
+    return EXIT_OK
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="conduct",
@@ -230,6 +249,11 @@ def _parser() -> argparse.ArgumentParser:
     e.add_argument("--json", action="store_true", help="print summary.json instead of a table")
     e.add_argument("--quiet", action="store_true", help="print nothing on success")
     e.add_argument("--label", help="run id to use instead of time and data hash")
+    e.add_argument("--workers", type=int, metavar="N",
+                   help="run bootstrap replicates on N local processes")
+    e.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run bootstrap replicates on a Dask cluster at ADDRESS "
+                        "(e.g. tcp://host:8786); needs conduct[dask]")
     e.add_argument("--alert", action="append", metavar="CONDITION",
                    help="exit with code 3 (after writing the run) when a condition is met: "
                         "verdict-change, break, theta-shift=X; repeatable")
@@ -253,6 +277,18 @@ def _parser() -> argparse.ArgumentParser:
     cp.add_argument("study", type=Path, help="study file (TOML)")
     cp.add_argument("runs", nargs="*", metavar="RUN", help="two run ids, earlier first")
     cp.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    pw = sub.add_parser("power", help="Monte Carlo size and power of the conduct tests at the "
+                        "estimated structure")
+    pw.add_argument("study", type=Path, help="study file (TOML)")
+    pw.add_argument("--replications", type=int, default=100, metavar="R",
+                    help="simulated panels per true model (default 100)")
+    pw.add_argument("--seed", type=int, help="random seed (default: [inference] seed)")
+    pw.add_argument("--workers", type=int, metavar="N", help="local worker processes")
+    pw.add_argument("--scheduler", metavar="ADDRESS",
+                    help="Dask scheduler address, e.g. tcp://host:8786")
+    pw.add_argument("--label", help="folder name under <runs>/power/ instead of time and hash")
+    pw.add_argument("--json", action="store_true", help="print power.json instead of a table")
+    pw.add_argument("--quiet", action="store_true", help="print nothing on success")
     h = sub.add_parser("history", help="one line per past run of a study")
     h.add_argument("study", type=Path, help="study file (TOML)")
     h.add_argument("--json", action="store_true", help="print the history as JSON")
@@ -284,6 +320,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "history": _cmd_history,
         "simulate": _cmd_simulate,
         "compare": _cmd_compare,
+        "power": lambda a: _cmd_power(a, args_list),
     }
     try:
         return handlers[args.command](args)

@@ -133,10 +133,12 @@ def _group_means(p: np.ndarray, q: np.ndarray, demand: DemandResult, supply: Sup
     """Means by group with delta-method intervals for each model.
 
     For a group S and multiplier h (theta, or a candidate's fixed value), the mean
-    markup is ``m = mean_S(h_i Q*_i)``; its influence function is
-    ``mean_S(Q*_i) psi_theta`` (estimated theta only) plus
-    ``mean_S(h_i dQ*_i/dalpha) psi_alpha``; the Lerner mean weights by ``1/P``.
-    Marginal cost is ``mean_S(P) - m`` with the same variance as ``m``.
+    markup is ``m = mean_S(h_i Q*_i)``; its gradient in (alpha, theta) is
+    ``(mean_S(h_i dQ*_i/dalpha), mean_S(Q*_i))`` (the theta part for the estimated
+    theta only), and its variance is ``g' V g`` with ``V`` the covariance of the
+    stacked influence functions of alpha and theta, computed once.  The Lerner
+    mean weights by ``1/P``.  Marginal cost is ``mean_S(P) - m``, with the variance of
+    ``m``.  Group sums use ``bincount``: nothing of size rows x groups is formed.
     """
     qstar = supply.qstar
     ok = np.isfinite(qstar)
@@ -144,33 +146,38 @@ def _group_means(p: np.ndarray, q: np.ndarray, demand: DemandResult, supply: Sup
     dq = np.zeros_like(demand.slope_grad)
     dq[ok] = (q[ok] / slope[ok] ** 2)[:, None] * demand.slope_grad[ok]
     n_groups = len(labels)
-    member = np.zeros((len(p), n_groups))
-    member[ok, group[ok]] = 1.0
-    counts = member.sum(axis=0)
+    gi = np.where(ok, group, 0)
+    counts = np.bincount(gi, weights=ok.astype(float), minlength=n_groups)
     keep = counts > 0
-    member = member[:, keep] / counts[keep]
     names = [lab for lab, k in zip(labels, keep, strict=True) if k]
+
+    def gmean(v: np.ndarray) -> np.ndarray:
+        return (np.bincount(gi, weights=np.where(ok, v, 0.0), minlength=n_groups)
+                / np.where(keep, counts, 1.0))[keep]
+
     z = float(stats.norm.ppf(0.5 + level / 2))
     qs = np.where(ok, qstar, 0.0)
+    stacked = np.column_stack([demand.fit.influence, supply.theta_influence])
+    v_all = cluster_cov(stacked, supply.full_cov, 1)  # (k_d + 1, k_d + 1)
+    k_d = demand.fit.influence.shape[1]
     out = []
-    psi_a = demand.fit.influence
     for name, h in variants:
         hv = np.where(ok, h, 0.0)
         estimated = name == "estimated"
         for what, weight in (("markup", np.ones_like(p)), ("lerner", 1.0 / p)):
-            value = member.T @ (hv * qs * weight)
-            grad_a = member.T @ ((hv * weight)[:, None] * dq)
-            psi = psi_a @ grad_a.T
+            value = gmean(hv * qs * weight)
+            grad = np.zeros((int(keep.sum()), k_d + 1))
+            for j in range(k_d):
+                grad[:, j] = gmean(hv * weight * dq[:, j])
             if estimated:
-                psi = psi + np.outer(supply.theta_influence, member.T @ (qs * weight))
-            var = np.diag(cluster_cov(psi, supply.full_cov, 1))
+                grad[:, k_d] = gmean(qs * weight)
+            var = np.einsum("gi,ij,gj->g", grad, v_all, grad)
             se = np.sqrt(np.clip(var, 0, None))
             if what == "markup":
                 markup, markup_se = value, se
             else:
                 lerner, lerner_se = value, se
-        mean_p = member.T @ np.where(ok, p, 0.0)
-        mc = mean_p - markup
+        mc = gmean(np.where(ok, p, 0.0)) - markup
         out.append(pd.DataFrame({
             "model": name, "group": names, "rows": counts[keep].astype(int),
             "mc": mc, "mc_lo": mc - z * markup_se, "mc_hi": mc + z * markup_se,

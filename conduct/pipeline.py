@@ -19,6 +19,7 @@ from conduct.breaks import BreakResult, RollingResult, rolling_theta, sup_wald_b
 from conduct.demand import DemandResult, estimate_demand
 from conduct.derived import Derived, derive
 from conduct.errors import ConductError
+from conduct.executor import make_mapper
 from conduct.identify import Identification, check_identification
 from conduct.menu import MenuResult, menu_test
 from conduct.panel import Panel, load_panel
@@ -170,7 +171,8 @@ def _warnings(panel: Panel, ident: Identification, demand: DemandResult,
     return tuple(out)
 
 
-def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
+def estimate(study: Study | str | Path, *, quiet: bool = True, workers: int | None = None,
+             scheduler: str | None = None) -> Results:
     """Run the whole job on a study.
 
     Parameters
@@ -179,6 +181,10 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
         A validated study or the path of a study file.
     quiet : bool
         Suppress progress bars (shown only on a terminal anyway).
+    workers : int or None
+        Run bootstrap replicates on this many local processes.
+    scheduler : str or None
+        Run bootstrap replicates on the Dask cluster at this address.
 
     Returns
     -------
@@ -223,8 +229,9 @@ def estimate(study: Study | str | Path, *, quiet: bool = True) -> Results:
             rolling = rolling_theta(panel, st, demand, st.supply.rolling_window)
     boot = None
     if supply is not None and st.inference.bootstrap > 0:
+        mapper = make_mapper(workers, scheduler, quiet=quiet, label="bootstrap")
         boot = cluster_bootstrap(panel, st, replications=st.inference.bootstrap,
-                                 seed=st.inference.seed, quiet=quiet)
+                                 seed=st.inference.seed, quiet=quiet, mapper=mapper)
     warnings = _warnings(panel, ident, demand, supply, st)
     if menu_note:
         warnings += (menu_note,)

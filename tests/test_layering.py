@@ -16,7 +16,7 @@ ORDER = [
     "derive_ops", "firms", "coverage", "assemble", "panel", "absorb", "iv", "weakiv",
     "stockyogo", "diagnostics", "design", "demand", "identify", "supply", "menu_stats",
     "menu", "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "power_sim",
-    "power", "summary", "alerts", "figures", "tables", "report", "runs", "compare",
+    "power_result", "power", "summary", "alerts", "figures", "tables", "report", "runs", "compare",
     "simulate", "layouts", "presets", "cli", "__init__",
 ]
 
