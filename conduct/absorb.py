@@ -45,9 +45,11 @@ class Absorbed:
 
 
 def _demean(x: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
-    sums = np.zeros((counts.shape[0], x.shape[1]))
-    np.add.at(sums, codes, x)
-    return x - (sums / counts[:, None])[codes]
+    out = np.empty_like(x)
+    for j in range(x.shape[1]):
+        means = np.bincount(codes, weights=x[:, j], minlength=counts.shape[0]) / counts
+        out[:, j] = x[:, j] - means[codes]
+    return out
 
 
 def absorb(

@@ -212,3 +212,21 @@ def test_two_way_cluster_matches_linearmodels():
                                              clusters=np.column_stack([m, t]), debiased=True)
     assert np.all(np.linalg.eigvalsh(np.asarray(ref.cov)) > 0)  # PSD here: no clipping
     np.testing.assert_allclose(ours.cov, np.asarray(ref.cov), rtol=1e-8)
+
+
+@pytest.mark.parametrize("kind", ["homoskedastic", "robust", "cluster"])
+def test_hansen_j_equals_linearmodels_ivgmm(kind):
+    """conduct's own J equals linearmodels 7.1 IVGMM(...).j_stat with the same weight."""
+    from linearmodels.iv import IVGMM
+
+    from conduct.iv import hansen_j
+
+    y, x, w, z, m, _ = _data(seed=4)
+    n = y.size
+    exog = np.column_stack([np.ones(n), w])
+    weight = {"homoskedastic": "unadjusted", "robust": "robust", "cluster": "clustered"}[kind]
+    kw = {"clusters": m} if kind == "cluster" else {}
+    ref = IVGMM(y, exog, x[:, None], z, weight_type=weight, **kw).fit(cov_type="robust")
+    cov = CovSpec(kind=kind, clusters=m if kind == "cluster" else None)
+    ours = hansen_j(y, np.column_stack([exog, x]), np.column_stack([exog, z]), cov)
+    assert ours == pytest.approx(float(ref.j_stat.stat), rel=1e-10)
