@@ -9,10 +9,12 @@ errors to exit codes: 0 done, 2 user error (one paragraph, no traceback),
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
+import signal
 import sys
 import textwrap
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -295,6 +297,24 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+@contextlib.contextmanager
+def _exit_on_sigterm() -> Iterator[None]:
+    """Turn SIGTERM into SystemExit(143) so that temporary run folders are cleaned up."""
+
+    def handler(signum: int, frame: Any) -> None:
+        raise SystemExit(128 + signum)
+
+    try:
+        previous = signal.signal(signal.SIGTERM, handler)
+    except ValueError:  # only the main thread may set handlers
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit code.
 
@@ -323,7 +343,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         "power": lambda a: _cmd_power(a, args_list),
     }
     try:
-        return handlers[args.command](args)
+        with _exit_on_sigterm():
+            return handlers[args.command](args)
     except ConductError as exc:
         print(_paragraph("conduct: error: ", str(exc)), file=sys.stderr)
         return exc.exit_code

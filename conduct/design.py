@@ -128,6 +128,20 @@ def prepare(
     markets = codes(frame[MARKET].to_numpy())
     periods = codes(frame[TIME].to_numpy())
     groups = [g for name, g in (("market", markets), ("period", periods)) if name in effects]
+    n_m, n_t = int(markets.max()) + 1, int(periods.max()) + 1
+    for name, own, other, what in (("market", n_m, n_t, "period"),
+                                   ("period", n_t, n_m, "market")):
+        if name in effects and other == 1:
+            raise EstimationError(
+                f"The {stage} stage has a single {what} in the rows used, so {name} effects "
+                f"absorb every row ({len(frame)} rows, {own} {name}s): nothing is left to "
+                f"estimate. Drop \"{name}\" from [demand] effects or add {what}s."
+            )
+    if study.demand.errors == "hac" and study.demand.hac_lags is not None \
+            and study.demand.hac_lags >= len(frame):
+        raise EstimationError(
+            f"[demand] hac_lags = {study.demand.hac_lags} is not below the {len(frame)} rows "
+            f"of the {stage} stage; choose fewer lags (about 4 (n/100)^(2/9) is common).")
     names = list(data)
     stacked = np.column_stack([data[k] for k in names]) if names else np.zeros((len(frame), 0))
     absorbed = absorb(stacked, groups)

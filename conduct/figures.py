@@ -101,16 +101,21 @@ def _num(value: float, digits: int = 2) -> str:
     return ("\N{MINUS SIGN}" if value < 0 else "") + text
 
 
+def _plain(text: str) -> str:
+    """User text for a matplotlib label: '$' escaped so it is never read as mathtext."""
+    return text.replace("$", r"\$")
+
+
 def _label(name: str) -> str:
-    return {"cournot": "Cournot"}.get(name, name)
+    return _plain({"cournot": "Cournot"}.get(name, name))
 
 
 def _quantity_unit(res: Results) -> str:
-    return res.study.panel.quantity
+    return _plain(res.study.panel.quantity)
 
 
 def _price_unit(res: Results) -> str:
-    return res.study.panel.price
+    return _plain(res.study.panel.price)
 
 
 # ----------------------------------------------------------------------------------------

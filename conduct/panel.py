@@ -136,6 +136,10 @@ def _missing(frame: pd.DataFrame, cols: list[str], study: Study, rows: np.ndarra
     return frame, rows, detail
 
 
+MAX_MAGNITUDE = 1e100  # squares and cross-products must stay finite in double precision
+MIN_MAGNITUDE = 1e-100
+
+
 def _check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
                   origin: Assembly) -> None:
     """Finite numbers; positive price and quantity; H in (0, 1]; whole sellers >= 1."""
@@ -147,6 +151,16 @@ def _check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
         if len(bad):
             raise DataError(f"Data file {path}: column '{col}'{origin.origin(col)} has "
                             f"infinite values at {rows_text(rows[bad])}.")
+        size = np.abs(vals)
+        bad = np.flatnonzero((size > MAX_MAGNITUDE) | ((size > 0) & (size < MIN_MAGNITUDE)))
+        if len(bad):
+            raise DataError(
+                f"Data file {path}: column '{col}'{origin.origin(col)} has values of extreme "
+                f"magnitude (e.g. {vals[bad[0]]:g}) at {rows_text(rows[bad])}; products and "
+                "squares of such numbers overflow or vanish in double precision. Express the "
+                "column in other units (e.g. thousands, or per unit) so that values lie "
+                f"between {MIN_MAGNITUDE:g} and {MAX_MAGNITUDE:g}."
+            )
     for role, col in (("price", spec.price), ("quantity", spec.quantity)):
         vals = frame[col].to_numpy()
         bad = np.flatnonzero(vals <= 0)

@@ -15,9 +15,10 @@ import json
 import os
 import re
 import shutil
+import signal
 import sqlite3
 import sys
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -177,6 +178,7 @@ def write_run(res: Results, *, label: str | None = None,
         runs.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise ConductError(f"Cannot create the runs folder {runs}: {exc.strerror}.") from None
+    sweep_incomplete(runs)
     repaired = ensure_history(runs)
     now = dt.datetime.now(dt.UTC).replace(microsecond=0)
     data_sha = res.panel.description.sha256
@@ -221,12 +223,54 @@ def write_run(res: Results, *, label: str | None = None,
         write_outputs(res, summary, tmp, previous=prev_summary)
         (tmp / "study.toml").write_text(res.study.text, encoding="utf-8")
         (tmp / "run.log").write_text(res.summary() + "\n", encoding="utf-8")
-        folder = _claim(runs, tmp, base, summary)
+        # no interrupt between the rename and the history row (SIGKILL aside, which the
+        # next ensure_history repairs)
+        with _signals_blocked():
+            folder = _claim(runs, tmp, base, summary)
+            _record(runs, folder, summary, label, now, study_sha)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    _record(runs, folder, summary, label, now, study_sha)
     return folder, summary
+
+
+@contextlib.contextmanager
+def _signals_blocked() -> Iterator[None]:
+    """Hold SIGINT and SIGTERM until the block ends (main thread, POSIX only)."""
+    sigs = {signal.SIGINT, signal.SIGTERM}
+    try:
+        old = signal.pthread_sigmask(signal.SIG_BLOCK, sigs)
+    except (AttributeError, ValueError, OSError):  # not available on this platform
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+def sweep_incomplete(runs: Path) -> int:
+    """Remove hidden temporary run folders left by processes that no longer exist.
+
+    Returns
+    -------
+    int
+        Folders removed.
+    """
+    removed = 0
+    for p in runs.glob(".incomplete-*"):
+        tail = p.name.rsplit("-", 1)[-1]
+        if not tail.isdigit():
+            continue
+        pid = int(tail)
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            shutil.rmtree(p, ignore_errors=True)
+            removed += 1
+        except (PermissionError, OSError):
+            continue
+    return removed
 
 
 def _create(con: sqlite3.Connection) -> None:
@@ -308,12 +352,45 @@ def rebuild_history(runs: Path) -> int:
 
 
 def ensure_history(runs: Path) -> str | None:
-    """Check the history and rebuild it when missing or damaged; return a warning or None."""
+    """Check the history: rebuild it when missing or damaged, and add rows for complete run
+    folders that lack one (a run stopped between its rename and its history row).
+
+    Returns
+    -------
+    str or None
+        A warning when anything was repaired.
+    """
     if _healthy(runs):
-        return None
+        return _reconcile(runs)
     n = rebuild_history(runs)
     return (f"The run history {runs / 'history.sqlite'} was missing or damaged; it was rebuilt "
             f"from {n} run folder(s) (a damaged file is kept beside it).")
+
+
+def _reconcile(runs: Path) -> str | None:
+    path = runs / "history.sqlite"
+    if not path.exists():
+        return None
+    with contextlib.closing(sqlite3.connect(path, timeout=60)) as con:
+        known = {r[0] for r in con.execute("SELECT folder FROM runs")}
+    missing = [f for f in _run_folders(runs) if f.name not in known]
+    rows = []
+    for folder in missing:
+        try:
+            summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
+            prov = summary.get("provenance") or {}
+            rows.append(_history_row(folder.name, summary, None,
+                                     str(prov.get("created_utc", "")),
+                                     str(prov.get("study_sha256", ""))))
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+    if not rows:
+        return None
+    with contextlib.closing(_connect(runs)) as con, con:
+        con.executemany(f"INSERT OR IGNORE INTO runs VALUES "
+                        f"({', '.join('?' * len(HISTORY_COLUMNS))})", rows)
+    return (f"The run history lacked {len(rows)} complete run folder(s) "
+            f"({', '.join(r[0] for r in rows)}); they were added from their summary.json.")
 
 
 def _connect(runs: Path) -> sqlite3.Connection:

@@ -154,7 +154,21 @@ def sub_table(reader: TableReader, key: str, required: bool) -> dict[str, Any] |
     return value
 
 
-def resolve_path(base: Path, raw: str) -> Path:
-    """``raw`` as an absolute path, relative paths taken from the folder ``base``."""
-    p = Path(raw).expanduser()
+def resolve_path(base: Path, raw: str, key: str = "a path") -> Path:
+    """``raw`` as an absolute path, relative paths taken from the folder ``base``.
+
+    Raises
+    ------
+    StudyFileError
+        When the path holds a control character (a NUL byte, say), naming ``key``.
+    """
+    if any(ord(ch) < 32 for ch in raw):
+        raise StudyFileError(
+            f"Study file in {base}: key '{key}' holds the path {raw!r}, which contains a "
+            "control character; write a plain path."
+        )
+    try:
+        p = Path(raw).expanduser()
+    except RuntimeError:  # '~user' with an unknown user: take the text literally
+        p = Path(raw)
     return p if p.is_absolute() else (base / p)

@@ -44,6 +44,8 @@ Estimator = Literal["2sls", "liml", "gmm"]
 Errors = Literal["cluster", "robust", "homoskedastic", "hac"]
 Effect = Literal["market", "period"]
 BUILTIN_MODELS: dict[str, float | None] = {"competitive": 0.0, "cournot": None, "collusive": 1.0}
+MAX_BOOTSTRAP = 100_000  # beyond this a run would take days; nothing gained in precision
+MAX_HAC_LAGS = 10_000
 DATA_SUFFIXES = (".csv", ".parquet", ".pq", ".dta", ".xlsx")
 
 
@@ -244,7 +246,7 @@ class Study:
 def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
     r = TableReader(t, "panel", file)
     raw_file = r.get("file", r.string)
-    path = resolve_path(file.parent, raw_file)
+    path = resolve_path(file.parent, raw_file, "panel.file")
     if path.suffix.lower() not in DATA_SUFFIXES:
         raise r.fail(
             "file",
@@ -307,8 +309,9 @@ def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
     if not spec.instruments:
         raise r.fail("instruments", "is empty: price is endogenous and needs at least one "
                      "excluded instrument (typically a cost shifter).")
-    if spec.hac_lags is not None and spec.hac_lags < 0:
-        raise r.fail("hac_lags", f"must be zero or positive, got {spec.hac_lags}.")
+    if spec.hac_lags is not None and not 0 <= spec.hac_lags <= MAX_HAC_LAGS:
+        raise r.fail("hac_lags", f"must be from 0 to {MAX_HAC_LAGS} (and fewer than the "
+                     f"periods in the panel), got {spec.hac_lags}.")
     overlap = set(spec.instruments) & (set(spec.shifters) | set(spec.rotators))
     if overlap:
         raise r.fail(
@@ -416,9 +419,11 @@ def _inference(t: dict[str, Any] | None, file: Path) -> InferenceSpec:
         seed=r.get("seed", r.integer, 1),
     )
     r.finish()
-    if spec.bootstrap < 0:
-        raise r.fail("bootstrap", f"must be 0 (analytic only) or a positive count, got "
-                     f"{spec.bootstrap}.")
+    if not 0 <= spec.bootstrap <= MAX_BOOTSTRAP:
+        raise r.fail("bootstrap", f"must be 0 (analytic only) or a count up to "
+                     f"{MAX_BOOTSTRAP:,}, got {spec.bootstrap}.")
+    if not 0 <= spec.seed < 2**63:
+        raise r.fail("seed", f"must be a whole number from 0 to 2**63 - 1, got {spec.seed}.")
     return spec
 
 
@@ -426,7 +431,8 @@ def _output(t: dict[str, Any] | None, file: Path) -> OutputSpec:
     if t is None:
         return OutputSpec(runs=file.parent / "runs")
     r = TableReader(t, "output", file)
-    spec = OutputSpec(runs=resolve_path(file.parent, r.get("runs", r.string, "runs")))
+    spec = OutputSpec(runs=resolve_path(file.parent, r.get("runs", r.string, "runs"),
+                                        "output.runs"))
     r.finish()
     return spec
 

@@ -197,7 +197,7 @@ class DerivedSpec:
 
 def _data_file(r: TableReader, key: str, study_file: Path, suffixes: tuple[str, ...]) -> Path:
     raw = r.get(key, r.string)
-    path = resolve_path(study_file.parent, raw)
+    path = resolve_path(study_file.parent, raw, "file")
     if path.suffix.lower() not in suffixes:
         raise r.fail(key, f"names '{raw}', whose type '{path.suffix or '(none)'}' is not read; "
                           f"use one of {', '.join(suffixes)}.")

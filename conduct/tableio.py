@@ -58,9 +58,14 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
     DataError
         When the file is missing, unreadable, empty or of an unknown type.
     """
-    if path.is_dir():
+    try:
+        is_dir, exists = path.is_dir(), path.exists()
+    except (OSError, ValueError) as exc:
+        raise DataError(f"{what} {path} cannot be opened: "
+                        f"{getattr(exc, 'strerror', None) or exc}.") from None
+    if is_dir:
         raise DataError(f"{what} {path} is a directory; give the path of a file.")
-    if not path.exists():
+    if not exists:
         raise DataError(f"{what} {path} does not exist (paths are relative to the study file).")
     suffix = path.suffix.lower()
     try:
@@ -154,8 +159,9 @@ def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray
         )
     if pd.api.types.is_numeric_dtype(values):
         arr = values.to_numpy(dtype=float)
-        if not np.all(np.isfinite(arr)) or not np.all(arr == np.round(arr)):
-            bad = np.flatnonzero(~np.isfinite(arr) | (arr != np.round(arr)))
+        wrong = ~np.isfinite(arr) | (arr != np.round(arr)) | (np.abs(arr) >= 2.0**53)
+        if wrong.any():
+            bad = np.flatnonzero(wrong)
             raise DataError(
                 f"{what} {path}: period column '{col}' has non-integer values at "
                 f"{rows_text(file_rows[bad])}; periods must be integers, dates or labels like "
@@ -240,6 +246,18 @@ def file_sha256(path: Path) -> str:
 def market_labels(values: pd.Series) -> np.ndarray:
     """Market identifiers as stripped strings; whole floats lose their ``.0`` (3.0 -> '3')."""
     mk = values
-    if pd.api.types.is_float_dtype(mk) and np.all(mk == np.round(mk)):
-        mk = mk.astype(np.int64)
+    if pd.api.types.is_float_dtype(mk):
+        arr = mk.to_numpy(dtype=float)
+        whole = np.isfinite(arr) & (arr == np.round(arr)) & (np.abs(arr) < 2.0**53)
+        if whole.all():
+            mk = mk.astype(np.int64)
+        elif not np.isfinite(arr).all():
+            bad = np.flatnonzero(~np.isfinite(arr))
+            raise DataError(
+                f"The market column '{values.name}' holds non-finite identifiers (e.g. "
+                f"{arr[bad[0]]!r}) at {len(bad)} row(s); market identifiers must be labels "
+                "or whole numbers."
+            )
+        else:
+            mk = pd.Series([repr(float(v)) for v in arr], index=mk.index)
     return mk.astype(str).str.strip().to_numpy(dtype=object)
