@@ -8,7 +8,7 @@ that common step so the two stages cannot drift apart.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -18,6 +18,8 @@ from conduct.errors import EstimationError
 from conduct.iv import CovSpec
 from conduct.panel import MARKET, TIME
 from conduct.study import Study
+
+THIN_RATIO = 1e-6  # variation left after absorbing effects, relative: below it is rounding noise
 
 __all__ = ["Prepared", "codes", "prepare"]
 
@@ -38,6 +40,9 @@ class Prepared:
         Covariance choice with the small-sample penalty for absorbed effects.
     markets : numpy.ndarray
         (n,) market codes of the rows.
+    thin : dict of str to float
+        Columns whose variation nearly vanishes with the fixed effects: name -> ratio
+        of their standard deviation after absorption to before (below 1e-6).
     """
 
     columns: dict[str, np.ndarray]
@@ -45,6 +50,7 @@ class Prepared:
     absorbed: Absorbed
     cov: CovSpec
     markets: np.ndarray
+    thin: dict[str, float] = field(default_factory=dict)
 
 
 def codes(values: pd.Series | np.ndarray) -> np.ndarray:
@@ -161,5 +167,12 @@ def prepare(
         penalty = max(penalty, 0)
     cov = CovSpec(kind=errors, clusters=c1, hac_lags=study.demand.hac_lags,
                   df_penalty=penalty, clusters2=c2)
+    thin: dict[str, float] = {}
+    if groups:
+        for k in names:
+            before = float(np.std(data[k]))
+            after = float(np.std(columns[k]))
+            if not k.startswith("_") and before > 0 and after / before < THIN_RATIO:
+                thin[k] = after / before
     return Prepared(columns=columns, constant=not groups, absorbed=absorbed, cov=cov,
-                    markets=markets)
+                    markets=markets, thin=thin)

@@ -17,7 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from conduct.iv import CovSpec, cluster_cov
+from conduct.errors import EstimationError
+from conduct.iv import CovSpec, cluster_cov, condition_number
 from conduct.stockyogo import strength_reading
 from conduct.weakiv import effective_f, first_stage
 
@@ -115,8 +116,15 @@ def first_stage_table(
     kind = _weakiv_cov(cov)
     if kind is None:
         return _hac_table(endog, instruments, exog, names, cov)
-    fs = first_stage(endog, instruments, exog, kind, clusters=cov.clusters,
-                     df_absorbed=cov.df_penalty)
+    try:
+        fs = first_stage(endog, instruments, exog, kind, clusters=cov.clusters,
+                         df_absorbed=cov.df_penalty)
+    except EstimationError as exc:
+        cond = condition_number(np.column_stack([exog, instruments]))
+        raise EstimationError(
+            f"{str(exc).rstrip('.')}. The instruments have condition number {cond:.3g} "
+            "after scaling: some are nearly collinear; drop one or combine them."
+        ) from None
     out = []
     for j, name in enumerate(names):
         test = fs.f[j]

@@ -119,6 +119,8 @@ class IVFit:
         Degrees of freedom of J (instruments minus endogenous regressors).
     j_convention : str
         Which form of the over-identification statistic ``j_stat`` is.
+    z_condition : float
+        Condition number of the (column-scaled) instrument matrix ``[exog, excluded]``.
     kappa : float
         k-class parameter (1 for 2SLS, the LIML eigenvalue for LIML).
     """
@@ -138,6 +140,7 @@ class IVFit:
     j_df: int
     kappa: float
     j_convention: str = ""
+    z_condition: float = 1.0
 
     @property
     def se(self) -> np.ndarray:
@@ -342,8 +345,9 @@ def fit_iv(
         x, z = np.column_stack([exog, endog]), np.column_stack([exog, instruments])
     else:
         x, z = check_design(exog, endog, instruments, names, instrument_names)
+    z_cond = condition_number(z) if not checked else 1.0
     if estimator == "2sls" and cov.kind != "hac":
-        fit = fit_2sls_arrays(y, x, z, names, cov, j_df=kz - ke)
+        fit = replace(fit_2sls_arrays(y, x, z, names, cov, j_df=kz - ke), z_condition=z_cond)
         if overid and kz > ke and _enough_clusters(cov, kx + kz) and cov.clusters2 is None:
             j = hansen_j(y, x, z, cov)
             fit = replace(fit, j_stat=j, j_p=float(stats.chi2.sf(j, kz - ke)),
@@ -395,6 +399,7 @@ def fit_iv(
         j_df=kz - ke,
         kappa=kappa,
         j_convention=_j_convention(cov) if j_stat is not None else "",
+        z_condition=z_cond,
     )
 
 
@@ -554,6 +559,16 @@ def check_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
     inames = instrument_names or tuple(f"instrument {i + 1}" for i in range(kz))
     _check_rank(z, names[:kx] + tuple(inames), "instruments")
     return x, z
+
+
+def condition_number(a: np.ndarray) -> float:
+    """Condition number of ``a`` after scaling each column to unit root-mean-square."""
+    if a.shape[1] == 0:
+        return 1.0
+    scale = np.sqrt((a**2).mean(axis=0))
+    scale = np.where(scale > 0, scale, 1.0)
+    sv = np.linalg.svd(np.linalg.qr(a / scale, mode="r"), compute_uv=False)
+    return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 
 def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:

@@ -30,6 +30,8 @@ from conduct.thetaset import ThetaSet, candidate_ar_tests, theta_ar_set
 
 __all__ = ["Results", "estimate"]
 
+COND_WARN = 1e6  # common practice: beyond this, least-squares results lose digits
+
 _HTML = Environment(autoescape=True).from_string(
     """<div class="conduct-results"><h4>{{ title }}</h4><p>{{ desc }}</p>
 <table><tr><th>mean elasticity</th><td>{{ elasticity }}</td></tr>
@@ -158,6 +160,18 @@ def _warnings(panel: Panel, ident: Identification, demand: DemandResult,
         g = panel.description.markets
         if g < 20:
             out.append(f"Only {g} market clusters: cluster-robust inference may be unreliable.")
+    stages = [("demand", demand.fit, demand.prepared)]
+    if supply is not None:
+        stages.append(("supply", supply.fit, supply.prepared))
+    for stage, fit, prep in stages:
+        if fit.z_condition > COND_WARN:
+            out.append(f"The {stage} instruments are badly conditioned (condition number "
+                       f"{fit.z_condition:.3g} after scaling): some are nearly collinear, "
+                       "so estimates may be numerically fragile.")
+        for name, ratio in sorted(prep.thin.items()):
+            out.append(f"In the {stage} stage, '{name}' keeps only {ratio:.3g} of its "
+                       "variation after the fixed effects are removed: what is left is "
+                       "likely rounding noise; drop it or change the effects.")
     for fs in demand.first_stage:
         if fs.f < 10:  # common practice: the Staiger-Stock rule of thumb
             out.append(f"Weak first stage for {fs.name} in demand (F = {fs.f:.1f} < 10).")

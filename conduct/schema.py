@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import unicodedata
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
@@ -78,7 +79,7 @@ class TableReader:
     def string(self, value: Any, key: str) -> str:
         if not isinstance(value, str) or not value.strip():
             raise self.fail(key, f"must be a non-empty string, got {value!r}.")
-        return value.strip()
+        return unicodedata.normalize("NFC", value.strip())
 
     def opt_string(self, value: Any, key: str) -> str | None:
         if value == "":
@@ -91,7 +92,7 @@ class TableReader:
                                  f"the bare string {value!r}.")
         if not isinstance(value, list) or not all(isinstance(v, str) and v.strip() for v in value):
             raise self.fail(key, f"must be a list of column names (strings), got {value!r}.")
-        out = tuple(v.strip() for v in value)
+        out = tuple(unicodedata.normalize("NFC", v.strip()) for v in value)
         dupes = sorted({v for v in out if out.count(v) > 1})
         if dupes:
             raise self.fail(key, f"lists {', '.join(dupes)} more than once.")

@@ -310,8 +310,8 @@ def _demand(t: dict[str, Any], file: Path) -> DemandSpec:
         raise r.fail("instruments", "is empty: price is endogenous and needs at least one "
                      "excluded instrument (typically a cost shifter).")
     if spec.hac_lags is not None and not 0 <= spec.hac_lags <= MAX_HAC_LAGS:
-        raise r.fail("hac_lags", f"must be from 0 to {MAX_HAC_LAGS} (and fewer than the "
-                     f"periods in the panel), got {spec.hac_lags}.")
+        raise r.fail("hac_lags", f"must be zero or positive, at most {MAX_HAC_LAGS} (and "
+                     f"fewer than the periods in the panel), got {spec.hac_lags}.")
     overlap = set(spec.instruments) & (set(spec.shifters) | set(spec.rotators))
     if overlap:
         raise r.fail(
@@ -420,7 +420,7 @@ def _inference(t: dict[str, Any] | None, file: Path) -> InferenceSpec:
     )
     r.finish()
     if not 0 <= spec.bootstrap <= MAX_BOOTSTRAP:
-        raise r.fail("bootstrap", f"must be 0 (analytic only) or a count up to "
+        raise r.fail("bootstrap", f"must be 0 (analytic only) or a positive count up to "
                      f"{MAX_BOOTSTRAP:,}, got {spec.bootstrap}.")
     if not 0 <= spec.seed < 2**63:
         raise r.fail("seed", f"must be a whole number from 0 to 2**63 - 1, got {spec.seed}.")

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import re
+import unicodedata
 from pathlib import Path
 
 import numpy as np
@@ -89,7 +90,8 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
         raise DataError(f"{what} {path} has no columns.")
     if len(frame) == 0:
         raise DataError(f"{what} {path} has a header but no data rows.")
-    frame.columns = [str(c).strip() for c in frame.columns]
+    # names compared in composed Unicode form (files from some tools are decomposed)
+    frame.columns = [unicodedata.normalize("NFC", str(c).strip()) for c in frame.columns]
     return frame
 
 

@@ -682,11 +682,6 @@ def test_message_says_how_to_ask_for_the_sensible_reading(
     assert topic.search(msg) and ASK.search(msg), msg
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "assemble.py:_locate — a column name written in decomposed Unicode (NFD, as macOS "
-    "file tools produce) does not match the same name in composed form (NFC) in the study, "
-    "and the message suggests a name that looks identical; compare names after "
-    "unicodedata.normalize('NFC', ...) (or say the two differ in Unicode normalisation)"))
 def test_decomposed_accents_in_column_names(project: Project) -> None:
     nfd = unicodedata.normalize("NFD", "région")
     project.write_csv(project.frame.rename(columns={"region": nfd}))

@@ -204,12 +204,6 @@ def test_numerically_collinear_instruments_are_refused_with_the_number(
     assert not project.runs.exists()
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "iv.py:_check_rank/fit_iv — instruments with condition number ~1e8 pass the 1e10 "
-    "refusal threshold and linearmodels then raises ValueError ('clustered covariance ... "
-    "singular') in the over-identification step: exit 1.  Warn above ~1e6 with the "
-    "condition number (summary warnings), and turn linearmodels' ValueError into an "
-    "EstimationError or a skipped J with a note"))
 def test_ill_conditioned_instruments_are_reported_with_the_number(project: Project) -> None:
     _near_copy(project, 1e-8)  # condition number ~1e8: not collinear, badly conditioned
     res = project.estimate("--json")
@@ -222,11 +216,6 @@ def test_ill_conditioned_instruments_are_reported_with_the_number(project: Proje
     assert m and 1e6 < float(m.group(1)) < 1e11, msg
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "design.py:prepare — an instrument that varies almost only across markets (within-"
-    "market variation 1e-9 of its level) survives market effects as rounding noise and is "
-    "used silently; compare each column's variation after absorption with before and warn "
-    "(or refuse) below ~1e-6, naming the column and the ratio"))
 def test_instrument_with_almost_no_within_variation_is_reported(project: Project) -> None:
     f = project.frame.copy()
     f["depot"] = 1.5 * f["region"] + 1e-9 * np.random.default_rng(2).normal(size=len(f))
