@@ -200,7 +200,7 @@ def _main_table(study: Study, main: pd.DataFrame, take: list[str], numeric: set[
     labels, t, kind = parse_periods(frame[spec.period], spec.period, path, rows)
     frame[PERIOD] = labels
     frame[TIME] = t
-    frame[MARKET] = (market_labels(frame[spec.market]) if spec.market
+    frame[MARKET] = (market_labels(frame[spec.market], rows) if spec.market
                      else np.full(len(frame), "all", dtype=object))
     _refuse_duplicates(frame, rows, study)
     return frame, rows, kind, int(kmiss.sum()), detail

@@ -245,7 +245,7 @@ def file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def market_labels(values: pd.Series) -> np.ndarray:
+def market_labels(values: pd.Series, rows: np.ndarray | None = None) -> np.ndarray:
     """Market identifiers as stripped strings; whole floats lose their ``.0`` (3.0 -> '3')."""
     mk = values
     if pd.api.types.is_float_dtype(mk):
@@ -255,10 +255,11 @@ def market_labels(values: pd.Series) -> np.ndarray:
             mk = mk.astype(np.int64)
         elif not np.isfinite(arr).all():
             bad = np.flatnonzero(~np.isfinite(arr))
+            where = rows_text(rows[bad]) if rows is not None else f"{len(bad)} row(s)"
             raise DataError(
                 f"The market column '{values.name}' holds non-finite identifiers (e.g. "
-                f"{arr[bad[0]]!r}) at {len(bad)} row(s); market identifiers must be labels "
-                "or whole numbers."
+                f"{float(arr[bad[0]])}) at {where}; market identifiers must be labels or "
+                "whole numbers."
             )
         else:
             mk = pd.Series([repr(float(v)) for v in arr], index=mk.index)

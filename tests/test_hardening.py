@@ -407,10 +407,7 @@ CORPUS: list[Case] = [
     Case("inf-period", "inf/NaN strings", frame(_set("quarter", [3], "inf")),
          ("'quarter'", "row 5")),
     Case("inf-market-id", "inf/NaN strings", frame(_set("region", [3], "inf")),
-         ("'region'", "row 5"),
-         bug="tableio.py:market_labels — a numeric market column holding inf passes the "
-             "whole-number test (inf == round(inf)) and astype(int64) raises "
-             "IntCastingNaNError (exit 1); refuse non-finite market ids naming the rows"),
+         ("'region'", "row 5")),
     # --- zero or negative prices and quantities
     Case("zero-price", "zero or negative price/quantity", frame(_set("price", [4], 0.0)),
          ("'price'", "must be positive", "row 6")),
