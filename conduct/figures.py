@@ -504,6 +504,43 @@ def marginal_cost_figure(res: Results) -> Figure:
     return fig
 
 
+def rolling_figure(res: Results) -> Figure:
+    """Rolling-window theta with its Wald band and the three benchmarks.
+
+    Parameters
+    ----------
+    res : Results
+        With ``res.rolling`` set (``[supply] rolling_window``).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    roll = res.rolling
+    if roll is None or res.supply is None:
+        raise ConductError("No rolling-window estimates in these results.")
+    lo, hi = roll.ci()
+    x = np.arange(len(roll.theta))
+    fig = _new_figure()
+    ax = fig.add_subplot()
+    ax.fill_between(x, lo, hi, color=PALETTE["sky"], alpha=0.45, linewidth=0,
+                    label=f"{roll.level:.0%} interval")
+    ax.plot(x, roll.theta, color=PALETTE["black"], lw=2,
+            label=f"\N{GREEK SMALL LETTER THETA}, {roll.window}-period windows")
+    ax.axhline(0.0, color=PALETTE["blue"], lw=1, ls=":", label="competitive (0)")
+    if res.supply.cournot_benchmark is not None:
+        ax.axhline(res.supply.cournot_benchmark, color=PALETTE["orange"], lw=1, ls="--",
+                   label=f"Cournot (H = {res.supply.cournot_benchmark:.2f})")
+    ax.axhline(1.0, color=PALETTE["vermillion"], lw=1, ls="-.", label="collusive (1)")
+    step = max(1, len(x) // 8)
+    ax.set_xticks(x[::step], [_plain(e) for e in roll.ends[::step]], rotation=45, ha="right")
+    ax.set_xlabel("last period of the window")
+    ax.set_ylabel("conduct parameter \N{GREEK SMALL LETTER THETA}")
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.28), ncol=3, fontsize=8,
+              frameon=False)
+    return fig
+
+
 def lerner_figure(res: Results) -> Figure:
     """Lerner index per period: median and interquartile band across markets.
 
@@ -568,6 +605,8 @@ class FigureSpec:
         ``build(results, summary) -> Figure``.
     needs_supply : bool
         Skipped for demand-only studies.
+    when : callable or None
+        Further condition for the figure to apply (e.g. a rolling window was asked for).
     """
 
     name: str
@@ -575,6 +614,7 @@ class FigureSpec:
     caption: str
     build: Callable[[Results, Mapping[str, Any] | None], Figure]
     needs_supply: bool
+    when: Callable[[Results], bool] | None = None
 
 
 #: The figures in report order.
@@ -605,12 +645,18 @@ FIGURES: tuple[FigureSpec, ...] = (
                "Median Lerner index across markets in each period under the estimated "
                "conduct, with the interquartile band.",
                lambda r, s: lerner_figure(r), True),
+    FigureSpec("rolling", "Rolling-window conduct",
+               "Conduct parameter estimated on rolling windows of periods (demand from the "
+               "whole panel), with its confidence band, against the competitive, Cournot and "
+               "collusive benchmarks; each point is placed at the window's last period.",
+               lambda r, s: rolling_figure(r), True, lambda r: r.rolling is not None),
 )
 
 
 def available_figures(res: Results) -> tuple[FigureSpec, ...]:
     """The figures that apply to ``res`` (supply figures only when supply was estimated)."""
-    return tuple(f for f in FIGURES if res.supply is not None or not f.needs_supply)
+    return tuple(f for f in FIGURES if (res.supply is not None or not f.needs_supply)
+                 and (f.when is None or f.when(res)))
 
 
 def figure_png(fig: Figure, *, dpi: int = DPI) -> bytes:

@@ -14,7 +14,6 @@ representation can reuse it without a run folder.
 from __future__ import annotations
 
 import base64
-import json
 import shlex
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -60,7 +59,7 @@ _TABLE_SECTION = {
 }
 _FIGURE_SECTION = {
     "first_stage": "instruments", "demand_residuals": "demand", "elasticities": "demand",
-    "conduct": "conduct", "marginal_cost": "costs", "lerner": "costs",
+    "conduct": "conduct", "marginal_cost": "costs", "lerner": "costs", "rolling": "regimes",
 }
 _MAX_MARKETS_LISTED = 60
 _THETA = "\N{GREEK SMALL LETTER THETA}"
@@ -474,12 +473,48 @@ def _provenance(summary: Mapping[str, Any]) -> dict[str, Any]:
     return {"facts": facts, "versions": versions, "recorded": bool(prov)}
 
 
-def _extra_analyses(summary: Mapping[str, Any]) -> list[tuple[str, str]]:
-    out = []
-    for key in ("regimes", "breaks", "rolling", "groups"):
-        value = summary.get(key)
-        if value:
-            out.append((key, json.dumps(value, indent=2, sort_keys=True, allow_nan=False)))
+def _extra_analyses(summary: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """Regimes, groups, the break test, rolling windows and Porter's regime shift, each as
+    a title, a plain reading and a small table (header, rows of formatted cells)."""
+    c = summary.get("conduct") or {}
+    out: list[dict[str, Any]] = []
+
+    def num(v: Any, spec: str = ".4f") -> str:
+        return "-" if v is None else format(v, spec)
+
+    for key, title in (("regimes", "Conduct by known regime"),
+                       ("groups", "Conduct by group of markets")):
+        split = c.get(key)
+        if split:
+            rows = [[g["label"], num(g["theta"]), num(g["se"]),
+                     f"[{num(g['ci'][0])}, {num(g['ci'][1])}]", str(g["rows"]),
+                     num(g["p_competitive"], ".4g"), num(g["p_holm"], ".4g"),
+                     num(g["p_bh"], ".4g")] for g in split["thetas"]]
+            out.append({"title": f"{title} ('{split['column']}')", "reading": split["reading"],
+                        "header": ["value", "theta", "se", "interval", "rows",
+                                   "p (theta = 0)", "Holm", "BH"], "rows": rows})
+    brk = c.get("break")
+    if brk:
+        top = sorted(brk.get("path") or [], key=lambda d: -d["wald"])[:5]
+        out.append({"title": "Break at an unknown date (sup-Wald)", "reading": brk["reading"],
+                    "header": ["candidate date", "Wald"],
+                    "rows": [[d["date"], num(d["wald"], ".2f")] for d in top]})
+    roll = c.get("rolling")
+    if roll:
+        wins = roll["windows"]
+        rows = [[w["start"], w["end"], num(w["theta"]), num(w["se"])]
+                for w in wins[:: max(1, len(wins) // 12)]]
+        out.append({"title": f"Rolling windows of {roll['window']} periods",
+                    "reading": "Theta on consecutive windows of periods (every few windows "
+                               "shown; all are in summary.json and the figure).",
+                    "header": ["first period", "last period", "theta", "se"], "rows": rows})
+    shift = c.get("regime_shift")
+    if shift:
+        out.append({"title": f"Conduct relative to regime '{shift['base']}' (Porter 1983)",
+                    "reading": shift["reading"],
+                    "header": ["regime", "price effect", "theta", "se"],
+                    "rows": [[r["label"], num(r["price_effect"]), num(r["theta"]),
+                              num(r["se"])] for r in shift["regimes"]]})
     return out
 
 

@@ -353,3 +353,19 @@ def test_demand_only_study_writes_what_applies(tmp_path: Path) -> None:
     assert re.findall(r"<h2>(.*?)</h2>", html) == [h for _, h in report.SECTIONS]
     with pytest.raises(conduct.ConductError, match="demand only"):
         figures.conduct_figure(res)
+
+
+def test_regimes_section_shows_break_and_rolling(tmp_path) -> None:
+    from conduct.cli import main
+    from conduct.presets import write_study
+    from conduct.simulate import SimulationSpec
+
+    spec = SimulationSpec(markets=10, periods=16, seed=4, break_test=True, rolling_window=8)
+    study = write_study(tmp_path / "rb", spec)
+    assert main(["estimate", str(study), "--quiet", "--label", "rb"]) == 0
+    folder = study.parent / "runs" / "rb"
+    html = (folder / "report.html").read_text(encoding="utf-8")
+    assert "Break at an unknown date (sup-Wald)" in html
+    assert "Rolling windows of 8 periods" in html
+    assert "No regimes or breaks analysed." not in html
+    assert (folder / "figures" / "rolling.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
