@@ -315,6 +315,21 @@ def _run_folders(runs: Path) -> list[Path]:
                   if p.is_dir() and not p.name.startswith(".") and (p / "summary.json").exists())
 
 
+def _rows_from_folders(folders: list[Path]) -> list[tuple[Any, ...]]:
+    """History rows read back from run folders' ``summary.json`` (unreadable ones skipped)."""
+    rows = []
+    for folder in folders:
+        try:
+            summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
+            prov = summary.get("provenance") or {}
+            rows.append(_history_row(folder.name, summary, None,
+                                     str(prov.get("created_utc", "")),
+                                     str(prov.get("study_sha256", ""))))
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+    return rows
+
+
 def rebuild_history(runs: Path) -> int:
     """Rebuild ``history.sqlite`` from the run folders' ``summary.json`` files.
 
@@ -332,16 +347,7 @@ def rebuild_history(runs: Path) -> int:
         while (runs / f"history.sqlite.damaged-{n}").exists():
             n += 1
         os.replace(path, runs / f"history.sqlite.damaged-{n}")
-    rows = []
-    for folder in _run_folders(runs):
-        try:
-            summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-            prov = summary.get("provenance") or {}
-            rows.append(_history_row(folder.name, summary, None,
-                                     str(prov.get("created_utc", "")),
-                                     str(prov.get("study_sha256", ""))))
-        except (OSError, ValueError, KeyError, TypeError):
-            continue
+    rows = _rows_from_folders(_run_folders(runs))
     tmp = runs / f".history-{os.getpid()}.sqlite"
     with contextlib.closing(sqlite3.connect(tmp)) as con, con:
         _create(con)
@@ -374,16 +380,7 @@ def _reconcile(runs: Path) -> str | None:
     with contextlib.closing(sqlite3.connect(path, timeout=60)) as con:
         known = {r[0] for r in con.execute("SELECT folder FROM runs")}
     missing = [f for f in _run_folders(runs) if f.name not in known]
-    rows = []
-    for folder in missing:
-        try:
-            summary = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-            prov = summary.get("provenance") or {}
-            rows.append(_history_row(folder.name, summary, None,
-                                     str(prov.get("created_utc", "")),
-                                     str(prov.get("study_sha256", ""))))
-        except (OSError, ValueError, KeyError, TypeError):
-            continue
+    rows = _rows_from_folders(missing)
     if not rows:
         return None
     with contextlib.closing(_connect(runs)) as con, con:
