@@ -93,6 +93,9 @@ def _terminal_summary(summary: dict[str, Any], folder: Path) -> str:
         rows.append(("verdict", c["verdict"]))
         if c.get("ar_set"):
             rows.append(("AR set", c["ar_set"]["reading"]))
+        menu = summary.get("menu")
+        if menu:
+            rows.append(("menu test", f"not beaten: {', '.join(menu['best']) or 'none'}"))
         for key in ("regimes", "groups", "break"):
             if c.get(key):
                 rows.append((key, c[key]["reading"]))
