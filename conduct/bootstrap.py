@@ -14,7 +14,6 @@ from dataclasses import dataclass, replace
 from functools import partial
 
 import numpy as np
-import pandas as pd
 
 from conduct.demand import estimate_demand
 from conduct.errors import ConductError
@@ -72,13 +71,11 @@ def resample_markets(panel: Panel, rng: np.random.Generator) -> Panel:
     order = np.argsort(inverse, kind="stable")
     bounds = np.searchsorted(inverse[order], np.arange(uniq.size + 1))
     draws = rng.integers(0, uniq.size, uniq.size)
-    pieces = []
-    for j, g in enumerate(draws):
-        idx = order[bounds[g]:bounds[g + 1]]
-        part = f.iloc[idx].copy()
-        part[MARKET] = f"{uniq[g]}#{j}"
-        pieces.append(part)
-    frame = pd.concat(pieces, ignore_index=True)
+    sizes = bounds[draws + 1] - bounds[draws]
+    idx = np.concatenate([order[bounds[g]:bounds[g + 1]] for g in draws])
+    frame = f.iloc[idx].reset_index(drop=True)
+    names = np.asarray([f"{uniq[g]}#{j}" for j, g in enumerate(draws)], dtype=object)
+    frame[MARKET] = np.repeat(names, sizes)
     return replace(panel, frame=frame, source_rows=np.arange(len(frame)) + 2)
 
 
