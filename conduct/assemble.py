@@ -338,7 +338,7 @@ def assemble(study: Study) -> Assembled:
         table that does not add up, a derived variable that cannot be computed.
     """
     spec = study.panel
-    main = read_table(spec.file, spec.sheet)
+    main = read_table(spec.file, spec.sheet, csv_options=spec.csv_options())
     main_sha = file_sha256(spec.file)
     sources = _read_sources(study)
     main_take = _locate(study, main, sources)

@@ -65,6 +65,9 @@ class PanelSpec:
         Drop rows with missing values in used columns (each counted) instead of refusing.
     sheet : str or None
         Sheet name for Excel files.
+    delimiter, decimal, thousands : str or None
+        How the main CSV file writes fields and numbers (e.g. ``";"``, ``","``, ``"."``
+        for files written with European conventions); None is the plain reading.
     """
 
     file: Path
@@ -76,6 +79,14 @@ class PanelSpec:
     concentration: str | None = None
     drop_missing: bool = False
     sheet: str | None = None
+    delimiter: str | None = None
+    decimal: str | None = None
+    thousands: str | None = None
+
+    def csv_options(self) -> dict[str, str]:
+        """Keyword arguments for reading the main CSV file."""
+        opts = {"sep": self.delimiter, "decimal": self.decimal, "thousands": self.thousands}
+        return {k: v for k, v in opts.items() if v is not None}
 
 
 @dataclass(frozen=True, slots=True)
@@ -263,8 +274,14 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
         concentration=r.get("concentration", r.opt_string, None),
         drop_missing=r.get("drop_missing", r.boolean, False),
         sheet=r.get("sheet", r.opt_string, None),
+        delimiter=r.get("delimiter", _one_char(r), None),
+        decimal=r.get("decimal", _one_char(r), None),
+        thousands=r.get("thousands", _one_char(r), None),
     )
     r.finish()
+    if spec.decimal is not None and spec.decimal == spec.thousands:
+        raise r.fail("decimal", f"and panel.thousands are both {spec.decimal!r}; they must "
+                     "differ.")
     roles = {
         "market": spec.market,
         "period": spec.period,
@@ -284,6 +301,16 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
             )
         seen[col] = role
     return spec
+
+
+def _one_char(r: TableReader) -> Callable[[Any, str], str]:
+    def conv(value: Any, key: str) -> str:
+        if not isinstance(value, str) or len(value) != 1 or value in "\r\n\"":
+            raise r.fail(key, f"must be a single character such as \",\" \";\" or \".\", "
+                              f"got {value!r}.")
+        return value
+
+    return conv
 
 
 def _demand(t: dict[str, Any], file: Path) -> DemandSpec:

@@ -36,7 +36,8 @@ _MONTH = re.compile(r"^\s*(\d{4})[-/](\d{1,2})\s*$")
 
 
 def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
-               sheet_key: str = "panel.sheet") -> pd.DataFrame:
+               sheet_key: str = "panel.sheet",
+               csv_options: dict[str, str] | None = None) -> pd.DataFrame:
     """Read a CSV, Parquet, Stata or Excel file into a DataFrame.
 
     Parameters
@@ -71,7 +72,7 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
     suffix = path.suffix.lower()
     try:
         if suffix == ".csv":
-            frame = _read_csv(path, what)
+            frame = _read_csv(path, what, csv_options or {})
         elif suffix in (".parquet", ".pq"):
             frame = pd.read_parquet(path)
         elif suffix == ".dta":
@@ -95,7 +96,7 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
     return frame
 
 
-def _read_csv(path: Path, what: str) -> pd.DataFrame:
+def _read_csv(path: Path, what: str, options: dict[str, str]) -> pd.DataFrame:
     raw = path.read_bytes()
     if not raw.strip():
         raise DataError(f"{what} {path} is empty.")
@@ -107,11 +108,24 @@ def _read_csv(path: Path, what: str) -> pd.DataFrame:
             "re-save it as UTF-8."
         ) from None
     try:
-        return pd.read_csv(path, encoding="utf-8-sig")
+        frame = pd.read_csv(path, encoding="utf-8-sig", **options)
     except pd.errors.ParserError as exc:
         raise DataError(f"{what} {path}: rows do not all have the same fields ({exc}).") from None
     except pd.errors.EmptyDataError:
         raise DataError(f"{what} {path} is empty.") from None
+    if frame.shape[1] == 1 and "sep" not in options:
+        header = str(frame.columns[0])
+        for sep, name, written in ((";", "semicolons", '";"'), ("\t", "tabs", '"\\t"'),
+                                   ("|", "bars", '"|"')):
+            if sep in header:
+                first = header.split(sep)[0].strip()
+                raise DataError(
+                    f"{what} {path} was read as a single column '{header[:60]}': its fields "
+                    f"seem to be separated by {name}, not commas, so columns such as "
+                    f"'{first}' are not found on their own. Say so with delimiter = "
+                    f"{written} under [panel]."
+                )
+    return frame
 
 
 def _read_excel(path: Path, sheet: str | None, what: str, sheet_key: str) -> pd.DataFrame:
@@ -224,9 +238,15 @@ def to_numeric(frame: pd.DataFrame, col: str, path: Path, file_rows: np.ndarray,
     if len(bad):
         example = s.iloc[int(bad[0])]
         hint = ""
-        if isinstance(example, str) and re.fullmatch(r"\s*-?[\d.]+,\d+\s*", example):
-            hint = (" It looks like a decimal comma or thousands separator; convert the file "
-                    "to plain numbers (e.g. 1234.5) first.")
+        if isinstance(example, str) and re.fullmatch(r"\s*-?\d{1,3}(,\d{3})+(\.\d+)?\s*",
+                                                      example):
+            hint = (" It looks like a thousands separator (or a decimal comma): read it with "
+                    "thousands = \",\" (or decimal = \",\") under [panel], or convert the file "
+                    "to plain numbers such as 1234.5.")
+        elif isinstance(example, str) and re.fullmatch(r"\s*-?[\d.]*\d,\d+\s*", example):
+            hint = (" It looks like a decimal comma: read it with decimal = \",\" under "
+                    "[panel] (and thousands = \".\" if dots group thousands), or convert the "
+                    "file to plain numbers such as 1234.5.")
         raise DataError(
             f"{what} {path}: column '{col}' must be numeric but has text such as "
             f"'{example}' at {rows_text(file_rows[bad])}.{hint}"

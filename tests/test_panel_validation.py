@@ -413,3 +413,24 @@ def test_description_with_date_periods_counts_gaps_on_the_panel_calendar(
     d = load_panel(load_study(project.study)).description
     assert (d.rows, d.markets, d.periods, d.gaps, d.balanced) == (5, 2, 3, 1, False)
     assert d.period_kind == "date"
+
+
+def test_european_csv_conventions_are_read_when_declared(tmp_path) -> None:
+    """A file with ';' between fields, ',' for decimals and '.' grouping thousands reads
+    to the same panel as the plain file once [panel] says so."""
+    from conduct.panel import load_panel
+    from conduct.presets import write_study
+    from conduct.simulate import SimulationSpec
+    from conduct.study import load_study
+
+    study = write_study(tmp_path / "eu", SimulationSpec(markets=6, periods=8, seed=2))
+    plain = load_panel(load_study(study))
+    frame = pd.read_csv(study.parent / "panel.csv")
+    (study.parent / "panel.csv").write_text(frame.to_csv(index=False, sep=";", decimal=","))
+    toml = study.read_text().replace('file = "panel.csv"',
+                                     'file = "panel.csv"\ndelimiter = ";"\ndecimal = ","')
+    study.write_text(toml)
+    eu = load_panel(load_study(study))
+    cols = [c for c in plain.frame.columns if pd.api.types.is_float_dtype(plain.frame[c])]
+    np.testing.assert_allclose(eu.frame[cols].to_numpy(), plain.frame[cols].to_numpy(),
+                               rtol=1e-12)
