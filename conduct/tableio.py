@@ -110,6 +110,12 @@ def _read_csv(path: Path, what: str, options: dict[str, str]) -> pd.DataFrame:
     try:
         frame = pd.read_csv(path, encoding="utf-8-sig", **options)
     except pd.errors.ParserError as exc:
+        m = re.search(r"EOF inside string starting at row (\d+)", str(exc))
+        if m:  # pandas counts data rows from 0; the file line adds the header and 1
+            raise DataError(
+                f"{what} {path}: an opening quote on line {int(m.group(1)) + 1} is never "
+                "closed, so the rest of the file reads as one text cell; close or remove it."
+            ) from None
         raise DataError(f"{what} {path}: rows do not all have the same fields ({exc}).") from None
     except pd.errors.EmptyDataError:
         raise DataError(f"{what} {path} is empty.") from None

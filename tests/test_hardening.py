@@ -348,10 +348,7 @@ CORPUS: list[Case] = [
          ("panel.csv", "same fields", "line 21")),
     Case("ragged-unclosed-quote", "ragged rows",
          raw_csv(_replace_line(5, lambda line: '"' + line)),
-         ("panel.csv", re.compile(r"(?i)quote"), re.compile(r"\b(line|row) 6\b")),
-         bug="tableio.py:_read_csv — pandas' 'EOF inside string starting at row 5' is passed "
-             "through: it counts rows from 0 (the file line is 6) and never says 'quote'; "
-             "catch this ParserError and say 'an opening quote on line 6 is never closed'"),
+         ("panel.csv", re.compile(r"(?i)quote"), re.compile(r"\b(line|row) 6\b"))),
     # --- wrong delimiter
     Case("delimiter-semicolon", "wrong delimiter",
          raw_csv(lambda f: f.to_csv(index=False, sep=";")),
