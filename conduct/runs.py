@@ -413,4 +413,5 @@ def read_history(runs: Path) -> pd.DataFrame:
     if not (runs / "history.sqlite").exists():
         return pd.DataFrame(columns=list(HISTORY_COLUMNS))
     with contextlib.closing(_connect(runs)) as con:
-        return pd.read_sql_query("SELECT * FROM runs ORDER BY created_utc, run_id", con)
+        # insertion order: runs finishing within the same second keep their order
+        return pd.read_sql_query("SELECT * FROM runs ORDER BY rowid", con)
