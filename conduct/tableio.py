@@ -32,6 +32,7 @@ PERIOD = "_period"  # period label as a string, as written by the user (normalis
 TIME = "_t"  # integer position of the period on its own calendar (for ordering, gaps, lags)
 
 _QUARTER = re.compile(r"^\s*(\d{4})\s*[-_ ]?\s*[Qq]([1-4])\s*$")
+_QUARTER_FIRST = re.compile(r"^\s*[Qq]([1-4])\s*[-_/ ]?\s*(\d{4})\s*$")  # "Q1 2016"
 _MONTH = re.compile(r"^\s*(\d{4})[-/](\d{1,2})\s*$")
 
 
@@ -196,6 +197,10 @@ def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray
         ints = text.astype(np.int64).to_numpy()
         return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
     q = text.str.extract(_QUARTER)
+    if not q.notna().all().all():
+        first = text.str.extract(_QUARTER_FIRST)
+        if first.notna().all().all():
+            q = first[[1, 0]].set_axis([0, 1], axis=1)
     if q.notna().all().all():
         years, qs = q[0].astype(int).to_numpy(), q[1].astype(int).to_numpy()
         labels = np.asarray([f"{y}Q{k}" for y, k in zip(years, qs, strict=True)], dtype=object)

@@ -15,37 +15,35 @@ fix.  The note at the end of this docstring is the corpus summary asked for in i
 
 Corpus note (issue 10, item 6)
 ------------------------------
-75 bad-input cases in :data:`CORPUS` (14 of them xfail: bugs), 6 accepted readings,
-4 reading hints, plus hostile-string and never-evaluated tests at the end of this
-module; ``tests/test_properties.py`` fuzzes the same loaders.  By input class:
+75 bad-input cases in :data:`CORPUS` (1 of them xfail: a known bug), 7 accepted
+readings, 3 reading hints, plus hostile-string and never-evaluated tests at the end of
+this module; ``tests/test_properties.py`` fuzzes the same loaders.  By input class:
 
 * empty / header-only / ragged / wrong delimiter / BOM / non-UTF-8 text: exit 2,
   "Data file ... is empty", "has a header but no data rows", "rows do not all have the
-  same fields (... line N)", "is not UTF-8 text (first bad byte at offset N); re-save it
-  as UTF-8", or, for a wrong delimiter, "column 'region' ... is not in the data.
-  Columns present: region;quarter;...".  An unclosed quote is reported with pandas'
-  0-based row and without the word quote (xfail).  A UTF-8 BOM and CRLF are read.
+  same fields (... line N)", "an opening quote on line N is never closed", "is not UTF-8
+  text (first bad byte at offset N); re-save it as UTF-8", or, for a wrong delimiter,
+  "was read as a single column ... say so with delimiter = ";" under [panel]".  A UTF-8
+  BOM and CRLF are read.
 * thousands separators, decimal commas, ``inf``/``NaN``/``#N/A`` strings: exit 2
-  naming column, value and rows ("must be numeric but has text such as '3,056.66' at
-  rows 2, 3", "has infinite values at row 5", "has missing values at row 9 ...
-  drop_missing = true").  None of them says how to ask for the sensible reading (the
-  four HINTS, xfail).  ``inf`` as a market id exits 1 (xfail).
+  naming column, value and rows, and saying how to ask for the reading (``thousands`` /
+  ``decimal`` under [panel]); ``inf`` as a market id names the rows.
 * zero or negative prices and quantities, duplicate (market, period) keys (also across
   quarter spellings and padded labels): exit 2 naming column, value and rows.
+  "Q1 2016" quarter labels are read as 2016Q1.
 * one market with cluster errors, an instrument constant within markets, collinear
-  instruments, too few supply instruments: exit 2 naming the columns and the remedy.
-  A single period blames the shifter 'income' (xfail).
-* extreme magnitudes (1e300, 1e-300, a period of 1e19): exit 1 or a message blaming
-  the wrong column (xfail, five cases).
+  instruments, too few supply instruments, a single period with market effects: exit 2
+  naming the columns (or the period) and the remedy.
+* extreme magnitudes (1e300, 1e-300, a period of 1e19): exit 2 naming the column and
+  suggesting other units.
 * study files: invalid TOML (with line and column), wrong types, unknown keys (with a
-  did-you-mean): exit 2 naming file and key.  A negative seed, hac_lags = 10**12, a
-  ``~unknownuser`` path and a NUL in output.runs exit 1 (xfail).
+  did-you-mean), a negative seed, absurd hac_lags or bootstrap counts, a ``~unknownuser``
+  path, a NUL in output.runs: exit 2 naming file and key.
 * missing, dangling, unreadable data files, a path under a file, directories where a
-  file belongs, a runs path that is a file: exit 2.  A 300-character file name exits 1
-  (xfail).
+  file belongs, a runs path that is a file, a 300-character file name: exit 2.
 * Excel with several sheets or a title block, a CSV named .xlsx, Parquet with text
   numbers: exit 2 naming sheet or column and rows; clean text numbers in Parquet are
-  read.  Stata value labels on a numeric column are silently read as codes (xfail).
+  read.  Stata value labels on a numeric column are still read as codes (xfail).
 """
 
 from __future__ import annotations
@@ -570,6 +568,8 @@ ACCEPTED: list[tuple[str, Builder]] = [
           study(lambda s: s["panel"].update(price="prix_€", quantity="数量",
                                             market="région")))),
     ("stata-labelled-market", _stata_labelled_market),
+    ("quarter-labels-quarter-first",  # "Q1 2016" has one reading: 2016Q1
+     frame(lambda f: f.assign(quarter=[f"Q{q[-1]} {q[:4]}" for q in _quarter_labels(f)]))),
     ("quarter-labels-mixed-spelling",
      frame(lambda f: f.assign(quarter=[q.replace("Q", " q") if i % 2 else q
                                        for i, q in enumerate(_quarter_labels(f))]))),
@@ -656,12 +656,6 @@ HINTS = [
                  re.compile(r"(?i)decimal"), id="decimal-comma"),
     pytest.param(raw_csv(lambda f: f.to_csv(index=False, sep=";")),
                  re.compile(r"(?i)delimiter|separator"), id="semicolon-delimiter"),
-    pytest.param(frame(lambda f: f.assign(quarter=[f"Q{q[-1]} {q[:4]}"
-                                                   for q in _quarter_labels(f)])),
-                 re.compile(r"(?i)format"), id="quarter-label-Q1-2016",
-                 marks=pytest.mark.xfail(strict=True, reason=(
-                     "tableio.py:parse_periods — 'Q1 2016' labels are refused without saying "
-                     "how to ask for them; add a [panel] period format key and name it"))),
 ]
 
 
