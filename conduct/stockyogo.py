@@ -441,28 +441,24 @@ def computed_critical_value(
 # --------------------------------------------------------------------------
 
 
-def _size_values(n_endog: int, k: int) -> tuple[list[float], str] | None:
-    vals = [stock_yogo("tsls_size", n_endog, k, lv) for lv in LEVELS["tsls_size"]]
+def _table_values(table: Table, n_endog: int, k: int, min_k: int
+                  ) -> tuple[list[float], str] | None:
+    """Critical values of one table at every level: embedded, else computed (one regressor)."""
+    vals = [stock_yogo(table, n_endog, k, lv) for lv in LEVELS[table]]
     if all(v is not None for v in vals):
         return [float(v) for v in vals if v is not None], "Stock-Yogo"
-    if n_endog == 1 and 1 <= k <= MAX_K2:
-        return (
-            [computed_critical_value("tsls_size", k, lv) for lv in LEVELS["tsls_size"]],
-            "computed Stock-Yogo",
-        )
+    if n_endog == 1 and min_k <= k <= MAX_K2:
+        return [computed_critical_value(table, k, lv) for lv in LEVELS[table]], \
+            "computed Stock-Yogo"
     return None
+
+
+def _size_values(n_endog: int, k: int) -> tuple[list[float], str] | None:
+    return _table_values("tsls_size", n_endog, k, 1)
 
 
 def _bias_values(n_endog: int, k: int) -> tuple[list[float], str] | None:
-    vals = [stock_yogo("tsls_bias", n_endog, k, lv) for lv in LEVELS["tsls_bias"]]
-    if all(v is not None for v in vals):
-        return [float(v) for v in vals if v is not None], "Stock-Yogo"
-    if n_endog == 1 and 3 <= k <= MAX_K2:
-        return (
-            [computed_critical_value("tsls_bias", k, lv) for lv in LEVELS["tsls_bias"]],
-            "computed Stock-Yogo",
-        )
-    return None
+    return _table_values("tsls_bias", n_endog, k, 3)
 
 
 def strength_reading(
