@@ -35,7 +35,7 @@ from conduct.summary import build_summary
 from conduct.tables import spreadsheet_safe
 
 __all__ = [
-    "HISTORY_COLUMNS", "data_changes", "ensure_history", "previous_summary", "read_history",
+    "HISTORY_COLUMNS", "data_changes", "ensure_history", "read_history",
     "rebuild_history", "write_run",
 ]
 
@@ -401,11 +401,6 @@ def _record(runs: Path, folder: Path, summary: dict[str, Any], label: str | None
     row = _history_row(folder.name, summary, label, now.isoformat(), study_sha)
     with contextlib.closing(_connect(runs)) as con, con:
         con.execute(f"INSERT INTO runs VALUES ({', '.join('?' * len(row))})", row)
-
-
-def previous_summary(runs: Path) -> dict[str, Any] | None:
-    """The ``summary.json`` of the latest recorded run, or None."""
-    return _previous(runs)[0]
 
 
 def read_history(runs: Path) -> pd.DataFrame:
