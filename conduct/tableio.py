@@ -77,7 +77,7 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
         elif suffix in (".parquet", ".pq"):
             frame = pd.read_parquet(path)
         elif suffix == ".dta":
-            frame = pd.read_stata(path, convert_categoricals=False)
+            frame = _read_stata(path)
         elif suffix == ".xlsx":
             frame = _read_excel(path, sheet, what, sheet_key)
         else:
@@ -94,6 +94,30 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
         raise DataError(f"{what} {path} has a header but no data rows.")
     # names compared in composed Unicode form (files from some tools are decomposed)
     frame.columns = [unicodedata.normalize("NFC", str(c).strip()) for c in frame.columns]
+    return frame
+
+
+def _read_stata(path: Path) -> pd.DataFrame:
+    """A Stata file with codes kept; value labels go to ``attrs['value_labels']``.
+
+    Labelled market or period columns are fine as codes, but a labelled column
+    in a numeric role (price, an instrument) holds category codes, not numbers;
+    :func:`to_numeric` refuses those, naming the labels.
+    """
+    frame = pd.read_stata(path, convert_categoricals=False)
+    labels: dict[str, list[str]] = {}
+    try:
+        named = pd.read_stata(path, convert_categoricals=True)
+        for col in named.columns:
+            if isinstance(named[col].dtype, pd.CategoricalDtype):
+                labels[str(col)] = [str(c) for c in named[col].cat.categories]
+    except ValueError:  # labels pandas cannot turn into categories: match label sets by name
+        with pd.io.stata.StataReader(path) as reader:
+            reader.read(convert_categoricals=False)
+            sets = reader.value_labels()
+        labels = {str(c): [str(v) for v in sets[c].values()] for c in frame.columns
+                  if c in sets}
+    frame.attrs["value_labels"] = labels
     return frame
 
 
@@ -240,6 +264,16 @@ def to_numeric(frame: pd.DataFrame, col: str, path: Path, file_rows: np.ndarray,
                what: str = "Data file") -> pd.Series:
     """Column ``col`` as float64; text that is not a number is an error naming the rows."""
     s = frame[col]
+    labels = frame.attrs.get("value_labels", {}).get(col)
+    if labels:
+        shown = ", ".join(f"'{v}'" for v in labels[:4]) + (", ..." if len(labels) > 4 else "")
+        raise DataError(
+            f"{what} {path}: column '{col}' carries Stata value labels ({shown}), so its "
+            "values are category codes, not measured numbers, and cannot serve as a price, "
+            "quantity, shifter or instrument. Give the numeric variable instead, or, if the "
+            f"codes really are the numbers, drop the labels in Stata (label values {col}) "
+            "and save again."
+        )
     if pd.api.types.is_bool_dtype(s):
         return s.astype(float)
     if pd.api.types.is_numeric_dtype(s):

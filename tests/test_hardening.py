@@ -15,7 +15,7 @@ fix.  The note at the end of this docstring is the corpus summary asked for in i
 
 Corpus note (issue 10, item 6)
 ------------------------------
-75 bad-input cases in :data:`CORPUS` (1 of them xfail: a known bug), 7 accepted
+75 bad-input cases in :data:`CORPUS` (none xfail), 7 accepted
 readings, 3 reading hints, plus hostile-string and never-evaluated tests at the end of
 this module; ``tests/test_properties.py`` fuzzes the same loaders.  By input class:
 
@@ -43,7 +43,8 @@ this module; ``tests/test_properties.py`` fuzzes the same loaders.  By input cla
   file belongs, a runs path that is a file, a 300-character file name: exit 2.
 * Excel with several sheets or a title block, a CSV named .xlsx, Parquet with text
   numbers: exit 2 naming sheet or column and rows; clean text numbers in Parquet are
-  read.  Stata value labels on a numeric column are still read as codes (xfail).
+  read.  A Stata column with value labels in a numeric role: exit 2 naming the column
+  and its labels and how to drop them; labelled market ids are read as codes.
 """
 
 from __future__ import annotations
@@ -550,11 +551,7 @@ CORPUS: list[Case] = [
          ("panel.parquet", "'price'", "infinite", "row 6")),
     # --- Stata value labels
     Case("stata-labelled-numeric-column", "Stata file with labelled categories",
-         _stata_labelled_numeric, ("panel.dta", "'diesel'", "label"),
-         bug="tableio.py:read_table — read_stata(convert_categoricals=False) silently turns "
-             "the value-labelled instrument 'diesel' (low/mid/high) into codes 1-3; read the "
-             "value-label table and refuse labelled columns in numeric roles, naming the "
-             "column and its labels"),
+         _stata_labelled_numeric, ("panel.dta", "'diesel'", "value labels", "'low'")),
 ]
 
 ACCEPTED: list[tuple[str, Builder]] = [
