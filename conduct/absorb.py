@@ -14,12 +14,44 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from conduct.errors import EstimationError
 
-__all__ = ["Absorbed", "absorb"]
+__all__ = ["Absorbed", "absorb", "dense_codes"]
+
+
+def dense_codes(values: np.ndarray) -> np.ndarray:
+    """Integer codes 0..G-1 of the distinct values, in sorted order of the values.
+
+    Integers in a compact range are coded with a counting pass (no sort), other
+    values by hashing (:func:`pandas.factorize`); both are linear in the rows.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        (n,) labels of any sortable type.
+
+    Returns
+    -------
+    numpy.ndarray
+        (n,) int64 codes; equal to ``np.unique(values, return_inverse=True)[1]``.
+    """
+    values = np.asarray(values)
+    if values.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    if values.dtype.kind in "iub":
+        v = values.astype(np.int64, copy=False)
+        lo, hi = int(v.min()), int(v.max())
+        if hi - lo <= 4 * v.size + 1024:
+            shifted = v - lo
+            present = np.bincount(shifted, minlength=hi - lo + 1) > 0
+            return (np.cumsum(present) - 1)[shifted].astype(np.int64, copy=False)
+    if values.dtype.kind == "f" and np.isnan(values).any():
+        return np.unique(values, return_inverse=True)[1].astype(np.int64)
+    return pd.factorize(values, sort=True)[0].astype(np.int64, copy=False)
 
 
 @dataclass(frozen=True, slots=True)
@@ -99,7 +131,7 @@ def absorb(
     n_comp, _ = connected_components(graph, directed=False)
     df = int(n1 + n2 - n_comp)
     cells = g1.astype(np.int64) * n2 + g2
-    if len(g1) == n1 * n2 and np.unique(cells).size == len(cells):
+    if len(g1) == n1 * n2 and int(np.bincount(cells, minlength=n1 * n2).max()) == 1:
         out = _demean(_demean(x, g1, counts[0]), g2, counts[1])
         return Absorbed(out, df, 0, "two-way exact")
     scale = np.maximum(np.abs(x).max(axis=0), 1e-300)

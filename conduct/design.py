@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from conduct.absorb import Absorbed, absorb
+from conduct.absorb import Absorbed, absorb, dense_codes
 from conduct.errors import EstimationError
 from conduct.iv import CovSpec
 from conduct.panel import MARKET, TIME
@@ -55,13 +55,14 @@ class Prepared:
 
 def codes(values: pd.Series | np.ndarray) -> np.ndarray:
     """Integer codes 0..G-1 of the distinct values, in sorted order."""
-    return np.unique(np.asarray(values), return_inverse=True)[1].astype(np.int64)
+    return dense_codes(np.asarray(values))
 
 
 def _nested(groups: np.ndarray, clusters: np.ndarray) -> bool:
     """True when every group lies inside a single cluster."""
-    pairs = np.unique(np.column_stack([groups, clusters]), axis=0)
-    return len(pairs) == int(groups.max()) + 1
+    first = np.full(int(groups.max()) + 1, -1, dtype=np.int64)
+    first[groups[::-1]] = clusters[::-1]  # some cluster of each group
+    return bool(np.all(first[groups] == clusters))
 
 
 def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand"

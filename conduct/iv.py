@@ -29,6 +29,7 @@ import numpy as np
 from linearmodels.iv import IV2SLS, IVGMM, IVLIML
 from scipy import stats
 
+from conduct.absorb import dense_codes
 from conduct.errors import EstimationError
 
 __all__ = [
@@ -69,12 +70,11 @@ class CovSpec:
         """(codes, sign) of each clustering whose sandwich enters the covariance."""
         if self.clusters is None:
             raise ValueError("cluster covariance needs clusters")
-        c1 = np.unique(self.clusters, return_inverse=True)[1]
+        c1 = dense_codes(self.clusters)
         if self.clusters2 is None:
             return [(c1, 1.0)]
-        c2 = np.unique(self.clusters2, return_inverse=True)[1]
-        both = np.unique(c1.astype(np.int64) * (int(c2.max()) + 1) + c2,
-                         return_inverse=True)[1]
+        c2 = dense_codes(self.clusters2)
+        both = dense_codes(c1 * (int(c2.max()) + 1) + c2)
         return [(c1, 1.0), (c2, 1.0), (both, -1.0)]
 
     def n_clusters(self) -> int:
@@ -185,7 +185,7 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
             return (f"two-way cluster-robust ({gs[0]} x {gs[1]} clusters; Cameron, Gelbach & "
                     f"Miller 2011): V1 + V2 - V12, each G/(G-1) x (n-1)/({dof}) x sandwich "
                     "(absorbed effects nested in clusters not counted)")
-        g = len(np.unique(cov.clusters)) if cov.clusters is not None else 0
+        g = int(dense_codes(cov.clusters).max()) + 1 if cov.clusters is not None else 0
         return (f"cluster-robust, {g} clusters: G/(G-1) x (n-1)/({dof}) x sandwich "
                 "(absorbed effects nested in clusters not counted)")
     return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
@@ -435,7 +435,7 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec) -> float
         s_mat = (e1 @ e1 / n) * (z.T @ z / n)
     elif cov.kind == "cluster":
         assert cov.clusters is not None
-        sums = group_sums(np.unique(cov.clusters, return_inverse=True)[1], ze)
+        sums = group_sums(dense_codes(cov.clusters), ze)
         s_mat = sums.T @ sums / n
     else:
         s_mat = ze.T @ ze / n

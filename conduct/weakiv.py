@@ -34,6 +34,7 @@ import numpy as np
 import scipy.linalg as sla
 from scipy import optimize, stats
 
+from conduct.absorb import dense_codes
 from conduct.errors import EstimationError, IdentificationError
 
 __all__ = [
@@ -366,7 +367,7 @@ def _design(
         cl = np.asarray(clusters)
         if cl.shape != (n,):
             raise EstimationError(f"clusters must have shape ({n},), got {cl.shape}")
-        _, codes = np.unique(cl, return_inverse=True)
+        codes = dense_codes(cl)
         n_groups = int(codes.max()) + 1
         if n_groups <= k:
             raise EstimationError(
