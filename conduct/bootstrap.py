@@ -5,6 +5,14 @@ two distinct clusters), re-estimates demand, rebuilds the markup regressor and
 re-estimates the supply relation.  Replicate ``r`` draws from its own random
 stream, seeded by ``(seed, r)``, so results do not depend on how replicates
 are scheduled.
+
+Replicates run on a :class:`ReplicateKernel`: the raw demand and supply
+columns are built once, and each replicate only gathers rows, absorbs the
+fixed effects and solves the two 2SLS normal equations (point estimates, no
+standard errors or diagnostics).  Tests keep it equal to re-running
+:func:`conduct.demand.estimate_demand` and :func:`conduct.supply.estimate_supply`
+on the resampled panel (:func:`one_replicate`), which remains the reference and
+the path for LIML and GMM demand.
 """
 
 from __future__ import annotations
@@ -15,14 +23,18 @@ from functools import partial
 
 import numpy as np
 
-from conduct.demand import estimate_demand
+from conduct.absorb import absorb, dense_codes
+from conduct.demand import demand_columns, estimate_demand, price_slope
 from conduct.errors import ConductError
-from conduct.panel import MARKET, Panel
+from conduct.panel import MARKET, TIME, Panel
 from conduct.progress import Progress
 from conduct.study import Study
-from conduct.supply import estimate_supply
+from conduct.supply import estimate_supply, supply_columns
 
-__all__ = ["BootstrapResult", "cluster_bootstrap", "one_replicate", "resample_markets"]
+__all__ = ["BootstrapResult", "ReplicateKernel", "cluster_bootstrap", "one_replicate",
+           "replicate_kernel", "resample_markets"]
+
+SINGULAR = 1e13  # condition number of Z'Z or X_hat'X beyond which a replicate is dropped
 
 
 @dataclass(frozen=True, slots=True)
@@ -79,8 +91,171 @@ def resample_markets(panel: Panel, rng: np.random.Generator) -> Panel:
     return replace(panel, frame=frame, source_rows=np.arange(len(frame)) + 2)
 
 
+def _draw(n_markets: int, seed: int, r: int) -> np.ndarray:
+    """Markets drawn by replicate ``r`` (the same draws as :func:`resample_markets`)."""
+    return np.random.default_rng([seed, r]).integers(0, n_markets, n_markets)
+
+
+def _tsls(y: np.ndarray, x: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """2SLS point estimates from the normal equations; ValueError when near-singular."""
+    zz, zx = z.T @ z, z.T @ x
+    if np.linalg.cond(zz) > SINGULAR:
+        raise ValueError("instruments nearly collinear")
+    a = np.linalg.solve(zz, zx)
+    xpx = zx.T @ a
+    if np.linalg.cond(xpx) > SINGULAR:
+        raise ValueError("regressors nearly collinear given the instruments")
+    return np.linalg.solve(xpx, a.T @ (z.T @ y))
+
+
+@dataclass(frozen=True)
+class ReplicateKernel:
+    """Arrays a bootstrap replicate needs, built once from the panel.
+
+    Attributes
+    ----------
+    order, bounds : numpy.ndarray
+        Rows sorted by market and the start of each market in ``order``.
+    periods : numpy.ndarray
+        (n,) period codes.
+    demand : numpy.ndarray
+        (n, k_d) raw demand columns: ``_y``, exogenous, price terms, instruments.
+    n_exog, n_endog : int
+        Counts of demand exogenous regressors and price terms.
+    names : tuple of str
+        Demand regressor names (exogenous then price terms; ``const`` first without effects).
+    rotators : numpy.ndarray
+        (n, r) rotator values, in the order of ``rotator_names``.
+    rotator_names : tuple of str
+    supply : numpy.ndarray
+        (n, k_s) raw supply columns: price, cost shifters, Q, excluded instruments.
+    n_cost, n_instr : int
+        Counts of cost shifters and supply excluded instruments.
+    p, q : numpy.ndarray
+        (n,) price and quantity.
+    effects : tuple of str
+    price_name, form : str
+    cost_slope : bool
+    """
+
+    order: np.ndarray
+    bounds: np.ndarray
+    periods: np.ndarray
+    demand: np.ndarray
+    n_exog: int
+    n_endog: int
+    names: tuple[str, ...]
+    rotators: np.ndarray
+    rotator_names: tuple[str, ...]
+    supply: np.ndarray
+    n_cost: int
+    n_instr: int
+    p: np.ndarray
+    q: np.ndarray
+    effects: tuple[str, ...]
+    price_name: str
+    form: str
+    cost_slope: bool
+
+    @property
+    def n_markets(self) -> int:
+        """Markets in the panel."""
+        return len(self.bounds) - 1
+
+    def _absorb(self, x: np.ndarray, markets: np.ndarray, periods: np.ndarray
+                ) -> np.ndarray:
+        groups = [dense_codes(g) for name, g in (("market", markets), ("period", periods))
+                  if name in self.effects]
+        if not groups:
+            return np.column_stack([x, np.ones(len(x))])  # constant as the last column
+        return absorb(x, groups).values
+
+    def theta(self, seed: int, r: int) -> float:
+        """Theta of replicate ``r`` (NaN when the resample cannot be estimated)."""
+        draws = _draw(self.n_markets, seed, r)
+        starts, sizes = self.bounds[draws], np.diff(self.bounds)[draws]
+        ends = np.cumsum(sizes)
+        idx = self.order[np.arange(ends[-1]) - np.repeat(ends - sizes - starts, sizes)]
+        markets = np.repeat(np.arange(len(draws)), sizes)
+        periods = self.periods[idx]
+        try:
+            d = self._absorb(self.demand[idx], markets, periods)
+            const = d[:, -1:] if d.shape[1] > self.demand.shape[1] else d[:, :0]
+            ex = np.column_stack([const, d[:, 1:1 + self.n_exog]])
+            en = d[:, 1 + self.n_exog:1 + self.n_exog + self.n_endog]
+            inst = d[:, 1 + self.n_exog + self.n_endog:self.demand.shape[1]]
+            b = _tsls(d[:, 0], np.column_stack([ex, en]), np.column_stack([ex, inst]))
+            coef = dict(zip(self.names, b, strict=True))
+            p, q = self.p[idx], self.q[idx]
+            rot = {name: self.rotators[idx, j] for j, name in enumerate(self.rotator_names)}
+            slope, _ = price_slope(coef, self.price_name, rot, p, q, self.form)
+            keep = np.flatnonzero(slope < 0)
+            if len(keep) < 10:
+                return float("nan")
+            qstar = -q[keep] / slope[keep]
+            raw = np.column_stack([self.supply[idx[keep]], qstar])
+            s = self._absorb(raw, markets[keep], periods[keep])
+            k_raw = raw.shape[1]
+            const = s[:, -1:] if s.shape[1] > k_raw else s[:, :0]
+            ex = np.column_stack([const, s[:, 1:1 + self.n_cost]])
+            en = np.column_stack([s[:, k_raw - 1:k_raw]]
+                                 + ([s[:, 1 + self.n_cost:2 + self.n_cost]]
+                                    if self.cost_slope else []))
+            inst = s[:, 2 + self.n_cost:2 + self.n_cost + self.n_instr]
+            bs = _tsls(s[:, 0], np.column_stack([ex, en]), np.column_stack([ex, inst]))
+        except (ValueError, np.linalg.LinAlgError, ConductError):
+            return float("nan")
+        theta = float(bs[ex.shape[1]])
+        return theta if np.isfinite(theta) else float("nan")
+
+
+def replicate_kernel(panel: Panel, study: Study) -> ReplicateKernel | None:
+    """Build the replicate kernel; None when replicates need the full path (LIML, GMM).
+
+    Parameters
+    ----------
+    panel : Panel
+    study : Study
+        With a ``[supply]`` table.
+
+    Returns
+    -------
+    ReplicateKernel or None
+    """
+    if study.demand.estimator != "2sls" or study.supply is None:
+        return None
+    f = panel.frame
+    mk = dense_codes(f[MARKET].to_numpy())
+    order = np.argsort(mk, kind="stable")
+    bounds = np.searchsorted(mk[order], np.arange(int(mk.max()) + 2))
+    dc = demand_columns(f, study)
+    names_d = ["_y", *dc.exog, *dc.endog, *dc.instr]
+    sdata, sraw = supply_columns(f, study)
+    cost = list(study.supply.cost_shifters)
+    names_s = ["_p", *cost, "Q", *sraw]
+    scols = {**sdata, **sraw}
+    const = () if study.demand.effects else ("const",)
+    rot = tuple(study.demand.rotators)
+    return ReplicateKernel(
+        order=order, bounds=bounds, periods=dense_codes(f[TIME].to_numpy()),
+        demand=np.column_stack([dc.data[c] for c in names_d]),
+        n_exog=len(dc.exog), n_endog=len(dc.endog),
+        names=(*const, *dc.exog, *dc.endog),
+        rotators=(np.column_stack([f[r].to_numpy(dtype=float) for r in rot]) if rot
+                  else np.zeros((len(f), 0))),
+        rotator_names=rot,
+        supply=np.column_stack([scols[c] for c in names_s]), n_cost=len(cost),
+        n_instr=len(sraw), p=sdata["_p"], q=sdata["Q"], effects=tuple(study.demand.effects),
+        price_name=dc.price_name, form=study.demand.form,
+        cost_slope=bool(study.supply.cost_slope),
+    )
+
+
 def one_replicate(panel: Panel, study: Study, seed: int, r: int) -> float:
-    """Theta from bootstrap replicate ``r`` (NaN when it cannot be estimated)."""
+    """Theta from bootstrap replicate ``r`` by the full estimation path (NaN on failure).
+
+    The reference for :class:`ReplicateKernel` and the path for LIML or GMM demand.
+    """
     rng = np.random.default_rng([seed, r])
     boot = resample_markets(panel, rng)
     try:
@@ -118,15 +293,18 @@ def cluster_bootstrap(
     -------
     BootstrapResult
     """
+    kernel = replicate_kernel(panel, study)
+    one: Callable[[int], float] = (partial(kernel.theta, seed) if kernel is not None
+                                   else partial(one_replicate, panel, study, seed))
     if mapper is None:
         bar = Progress(replications, "bootstrap", quiet=quiet)
         thetas = []
         for r in range(replications):
-            thetas.append(one_replicate(panel, study, seed, r))
+            thetas.append(one(r))
             bar.step()
         bar.close()
     else:
-        thetas = mapper(partial(one_replicate, panel, study, seed), range(replications))
+        thetas = mapper(one, range(replications))
     arr = np.asarray(thetas, dtype=float)
     ok = arr[np.isfinite(arr)]
     level = study.inference.level

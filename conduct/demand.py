@@ -34,7 +34,7 @@ from conduct.panel import Panel
 from conduct.study import Study
 from conduct.weakiv import ARSet, anderson_rubin_set
 
-__all__ = ["DemandResult", "estimate_demand"]
+__all__ = ["DemandColumns", "DemandResult", "demand_columns", "estimate_demand", "price_slope"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -106,6 +106,96 @@ def _price_name(form: str) -> str:
     return "price" if form == "linear" else "log_price"
 
 
+@dataclass(frozen=True, slots=True)
+class DemandColumns:
+    """The demand equation's raw columns (before fixed effects are absorbed).
+
+    Attributes
+    ----------
+    price_name : str
+        ``price`` or ``log_price``.
+    data : dict of str to numpy.ndarray
+        ``_y`` and every regressor and instrument, each (n,).
+    exog, endog, instr : tuple of str
+        Names in ``data`` of the exogenous regressors, the price terms and the
+        excluded instruments.
+    """
+
+    price_name: str
+    data: dict[str, np.ndarray]
+    exog: tuple[str, ...]
+    endog: tuple[str, ...]
+    instr: tuple[str, ...]
+
+
+def demand_columns(frame: pd.DataFrame, study: Study) -> DemandColumns:
+    """Build the study's demand columns from the panel rows.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Panel rows.
+    study : Study
+
+    Returns
+    -------
+    DemandColumns
+    """
+    spec = study.demand
+    p = frame[study.panel.price].to_numpy(dtype=float)
+    q = frame[study.panel.quantity].to_numpy(dtype=float)
+    price_name = _price_name(spec.form)
+    y = q if spec.form == "linear" else np.log(q)
+    x_price = p if spec.form == "linear" else np.log(p)
+
+    data: dict[str, np.ndarray] = {"_y": y, price_name: x_price}
+    endog = [price_name]
+    for r in spec.rotators:
+        name = f"{price_name}*{r}"
+        data[name] = x_price * frame[r].to_numpy(dtype=float)
+        endog.append(name)
+    exog = [*spec.shifters, *spec.rotators]
+    for c in exog:
+        data[c] = frame[c].to_numpy(dtype=float)
+    instr = list(spec.instruments)
+    for w in spec.instruments:
+        data[w] = frame[w].to_numpy(dtype=float)
+    for r in spec.rotators:
+        for w in spec.instruments:
+            name = f"{w}*{r}"
+            data[name] = frame[w].to_numpy(dtype=float) * frame[r].to_numpy(dtype=float)
+            instr.append(name)
+    return DemandColumns(price_name, data, tuple(exog), tuple(endog), tuple(instr))
+
+
+def price_slope(coef: dict[str, float], price_name: str, rotators: dict[str, np.ndarray],
+                p: np.ndarray, q: np.ndarray, form: str) -> tuple[np.ndarray, np.ndarray]:
+    """Slope dQ/dP at every row, and the price coefficient per row.
+
+    Parameters
+    ----------
+    coef : dict of str to float
+        Demand coefficients by name (``price_name`` and ``price_name*rotator``).
+    price_name : str
+    rotators : dict of str to numpy.ndarray
+        Each rotator's values, (n,).
+    p, q : numpy.ndarray
+        Price and quantity, (n,).
+    form : str
+        ``linear`` or ``log``.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        ``dQ/dP`` and the coefficient on the price term, each (n,).
+    """
+    b_price = np.zeros(len(p)) + coef[price_name]
+    for r, rv in rotators.items():
+        b_price = b_price + coef[f"{price_name}*{r}"] * rv
+    slope = b_price if form == "linear" else b_price * q / p
+    return slope, b_price
+
+
 def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> DemandResult:
     """Estimate the study's demand equation.
 
@@ -126,27 +216,9 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     f = panel.frame
     p = f[study.panel.price].to_numpy(dtype=float)
     q = f[study.panel.quantity].to_numpy(dtype=float)
-    price_name = _price_name(spec.form)
-    y = q if spec.form == "linear" else np.log(q)
-    x_price = p if spec.form == "linear" else np.log(p)
-
-    data: dict[str, np.ndarray] = {"_y": y, price_name: x_price}
-    endog = [price_name]
-    for r in spec.rotators:
-        name = f"{price_name}*{r}"
-        data[name] = x_price * f[r].to_numpy(dtype=float)
-        endog.append(name)
-    exog = [*spec.shifters, *spec.rotators]
-    for c in exog:
-        data[c] = f[c].to_numpy(dtype=float)
-    instr = list(spec.instruments)
-    for w in spec.instruments:
-        data[w] = f[w].to_numpy(dtype=float)
-    for r in spec.rotators:
-        for w in spec.instruments:
-            name = f"{w}*{r}"
-            data[name] = f[w].to_numpy(dtype=float) * f[r].to_numpy(dtype=float)
-            instr.append(name)
+    cols_in = demand_columns(f, study)
+    price_name, data = cols_in.price_name, cols_in.data
+    exog, endog, instr = list(cols_in.exog), list(cols_in.endog), list(cols_in.instr)
 
     prep = prepare(f, data, study, stage="demand")
     cols = prep.columns
@@ -163,19 +235,16 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
                  instrument_names=tuple(instr))
 
     # slope of Q in P at every observation, and its gradient in the coefficients
-    b_price = np.zeros(n) + fit.coef(price_name)
+    rot = {r: f[r].to_numpy(dtype=float) for r in spec.rotators}
+    slope, b_price = price_slope(dict(zip(names, fit.params, strict=True)), price_name,
+                                 rot, p, q, spec.form)
     grad = np.zeros((n, fit.k))
     grad[:, names.index(price_name)] = 1.0
-    for r in spec.rotators:
-        term = f"{price_name}*{r}"
-        rv = f[r].to_numpy(dtype=float)
-        b_price = b_price + fit.coef(term) * rv
-        grad[:, names.index(term)] = rv
+    for r, rv in rot.items():
+        grad[:, names.index(f"{price_name}*{r}")] = rv
     if spec.form == "linear":
-        slope = b_price
         elasticity = slope * p / q
     else:
-        slope = b_price * q / p
         grad = grad * (q / p)[:, None]
         elasticity = b_price
     first = (first_stage_table(endog_arr, instr_arr, exog_arr, tuple(endog), prep.cov)

@@ -34,7 +34,7 @@ from conduct.iv import CovSpec, IVFit, check_design, cluster_cov, fit_iv
 from conduct.panel import Panel
 from conduct.study import Candidate, Study
 
-__all__ = ["CandidateTest", "SupplyResult", "benchmark_h", "estimate_supply"]
+__all__ = ["CandidateTest", "SupplyResult", "benchmark_h", "estimate_supply", "supply_columns"]
 
 QSTAR = "Q*"
 
@@ -246,6 +246,38 @@ class SupplySystem:
         return psi
 
 
+def supply_columns(frame: pd.DataFrame, study: Study
+                   ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """The supply relation's raw columns that do not depend on demand.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Panel rows.
+    study : Study
+        With a ``[supply]`` table.
+
+    Returns
+    -------
+    (dict, dict)
+        ``_p``, ``Q`` and the cost shifters; and the excluded instruments
+        (interactions ``a*b`` multiplied out), each (n,).
+    """
+    assert study.supply is not None
+    data: dict[str, np.ndarray] = {"_p": frame[study.panel.price].to_numpy(dtype=float),
+                                   "Q": frame[study.panel.quantity].to_numpy(dtype=float)}
+    for c in study.supply.cost_shifters:
+        data[c] = frame[c].to_numpy(dtype=float)
+    raw: dict[str, np.ndarray] = {}
+    for name in supply_instruments(study):
+        if "*" in name and name not in frame.columns:
+            a, b = name.split("*", 1)
+            raw[name] = frame[a].to_numpy(dtype=float) * frame[b].to_numpy(dtype=float)
+        else:
+            raw[name] = frame[name].to_numpy(dtype=float)
+    return data, raw
+
+
 def build_system(
     panel: Panel,
     study: Study,
@@ -303,16 +335,7 @@ def build_system(
     n_groups = len(labels)
 
     base_instr = supply_instruments(study)
-    data: dict[str, np.ndarray] = {"_p": p, "Q": q}
-    for c in s.cost_shifters:
-        data[c] = fs[c].to_numpy(dtype=float)
-    raw: dict[str, np.ndarray] = {}
-    for name in base_instr:
-        if "*" in name and name not in fs.columns:
-            a, b = name.split("*", 1)
-            raw[name] = fs[a].to_numpy(dtype=float) * fs[b].to_numpy(dtype=float)
-        else:
-            raw[name] = fs[name].to_numpy(dtype=float)
+    data, raw = supply_columns(fs, study)
     if n_groups == 1:
         qnames = [QSTAR]
         data[QSTAR] = qstar
