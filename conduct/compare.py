@@ -10,16 +10,17 @@ A figure overlays the two runs' conduct intervals and median Lerner paths.
 from __future__ import annotations
 
 import json
+import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from conduct.errors import ConductError, suggest
+from conduct.figures import RunSnapshot, run_comparison_figure
 from conduct.runs import FINGERPRINTS, data_changes, ensure_history, read_history
 from conduct.summary import clean
 
@@ -144,29 +145,33 @@ def compare_runs(runs: Path, a: str | None = None, b: str | None = None) -> Comp
     return Comparison(a=a, b=b, document=clean(doc))
 
 
+def _period_column(folder: Path) -> str:
+    """The period column named in a run's copy of its study file (``period`` if unreadable)."""
+    try:
+        doc = tomllib.loads((folder / "study.toml").read_text(encoding="utf-8"))
+        return str(doc["panel"]["period"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return "period"
+
+
 def comparison_figure(runs: Path, comp: Comparison) -> Figure:
-    """Two panels: both runs' conduct intervals, and both runs' median Lerner paths."""
-    fig = Figure(figsize=(9, 4), layout="constrained")
-    FigureCanvasAgg(fig)
-    left, right = fig.subplots(1, 2, width_ratios=[1, 2])
-    colours = {comp.a: "#0072B2", comp.b: "#D55E00"}
-    for i, run in enumerate((comp.a, comp.b)):
-        s, obs, _ = _load(runs / run)
-        c = s.get("conduct")
-        if c:
-            lo, hi = c["ci"]
-            left.errorbar([c["theta"]], [i], xerr=[[c["theta"] - lo], [hi - c["theta"]]],
-                          fmt="o", color=colours[run], capsize=4)
-        if "lerner_estimated" in obs:
-            med = obs.groupby("period", sort=False)["lerner_estimated"].median()
-            right.plot(np.arange(len(med)), med.to_numpy(), color=colours[run], label=run)
-            step = max(1, len(med) // 8)
-            right.set_xticks(np.arange(0, len(med), step), med.index[::step], rotation=45,
-                             ha="right", fontsize=8)
-    left.set_yticks([0, 1], [comp.a, comp.b], fontsize=7)
-    left.set_xlabel("theta (interval at the study's level)")
-    left.set_title("Conduct parameter")
-    right.set_ylabel("median Lerner index across markets")
-    right.set_title("Lerner index over time")
-    right.legend(fontsize=7)
-    return fig
+    """Both runs' conduct intervals and median Lerner paths, side by side.
+
+    Parameters
+    ----------
+    runs : Path
+        The study's runs folder.
+    comp : Comparison
+        The two runs compared.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Drawn by :func:`conduct.figures.run_comparison_figure` from each run's
+        ``summary.json`` and ``observations.csv``.
+    """
+    snaps = []
+    for run, role in ((comp.a, "earlier"), (comp.b, "later")):
+        summary, obs, _ = _load(runs / run)
+        snaps.append(RunSnapshot.of(summary, obs, role))
+    return run_comparison_figure(snaps[0], snaps[1], period_column=_period_column(runs / comp.b))

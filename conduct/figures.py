@@ -8,7 +8,9 @@ blindness), layouts are constrained so labels never overlap, and axis labels
 name the study's own price and quantity columns as units.
 
 :data:`FIGURES` lists the figures in report order; :func:`save_figures` writes
-them as ``figures/<name>.png``.
+them as ``figures/<name>.png``.  :func:`run_comparison_figure` sets two runs
+side by side from their summaries and observations (the later run's report and
+``conduct compare`` both draw it).
 """
 
 from __future__ import annotations
@@ -24,25 +26,33 @@ import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
 
 from conduct.errors import ConductError
-from conduct.panel import TIME
+from conduct.panel import MARKET, PERIOD, TIME
 from conduct.pipeline import Results
+from conduct.tableio import parse_periods
 
 __all__ = [
     "DPI",
     "FIGURES",
     "PALETTE",
     "FigureSpec",
+    "FlaggedSplit",
+    "LernerFlags",
+    "RunSnapshot",
     "ar_intervals",
     "available_figures",
     "conduct_figure",
     "elasticity_figure",
     "figure_png",
     "first_stage_figure",
+    "flags_text",
     "lerner_figure",
+    "lerner_flags",
     "marginal_cost_figure",
     "residual_figure",
+    "run_comparison_figure",
     "save_figures",
 ]
 
@@ -541,8 +551,227 @@ def rolling_figure(res: Results) -> Figure:
     return fig
 
 
+@dataclass(frozen=True, slots=True)
+class FlaggedSplit:
+    """One group of markets or known regime flagged by :func:`lerner_flags`.
+
+    Attributes
+    ----------
+    kind : str
+        ``group`` or ``regime``.
+    column : str
+        The panel column that defines the split.
+    label : str
+        The flagged value of that column.
+    theta : float
+        Its conduct parameter.
+    p_holm : float
+        Holm-adjusted one-sided p-value of theta = 0 against theta > 0.
+    average : float
+        The yardstick it exceeds: the mean theta across its split, weighted by rows.
+    markets : int
+        Markets holding rows of this group or regime.
+    """
+
+    kind: str
+    column: str
+    label: str
+    theta: float
+    p_holm: float
+    average: float
+    markets: int
+
+
+@dataclass(frozen=True, slots=True)
+class LernerFlags:
+    """What the Lerner figure marks, from the group, regime and break analyses.
+
+    Attributes
+    ----------
+    level : float
+        The study's confidence level; tests are read at ``1 - level``.
+    own_theta : dict of str to numpy.ndarray
+        ``group`` and/or ``regime`` (only those that flag something) -> (n,) array over
+        the rows of ``res.panel.frame``: the theta of the flagged group or regime the row
+        belongs to, NaN for rows not flagged by that split.
+    splits : tuple of FlaggedSplit
+        The flagged groups and regimes.
+    regime_periods : tuple of int
+        Time positions (``_t``) of the periods holding rows of a flagged regime.
+    break_date : str or None
+        First period after a break in conduct the sup-Wald test finds at the study's level.
+    break_at : float or None
+        Where to draw that break: halfway between the last period before it and its
+        first period, in time positions.
+    notes : tuple of str
+        Analyses that ran and flagged nothing, or that none was asked for.
+    """
+
+    level: float
+    own_theta: dict[str, np.ndarray]
+    splits: tuple[FlaggedSplit, ...]
+    regime_periods: tuple[int, ...]
+    break_date: str | None
+    break_at: float | None
+    notes: tuple[str, ...]
+
+    @property
+    def anything(self) -> bool:
+        """Whether any market-period or break is flagged."""
+        return bool(self.splits) or self.break_date is not None
+
+
+def lerner_flags(res: Results) -> LernerFlags:
+    """The markets, regime periods and break date the Lerner figure marks.
+
+    Parameters
+    ----------
+    res : Results
+        With a supply relation.
+
+    Returns
+    -------
+    LernerFlags
+
+    Notes
+    -----
+    With ``alpha = 1 - level`` (the study's level), a group of markets
+    (``[supply] groups``) or a known regime (``[supply] regimes``) is
+    *flagged* when all three hold:
+
+    1. the Wald test that conduct is equal across the split rejects (p < alpha),
+       so conduct differs somewhere;
+    2. its own theta is above zero after Holm's adjustment across the split
+       (one-sided ``p_holm`` < alpha);
+    3. its theta is above the mean theta across the split, weighted by the
+       rows of each group or regime (a comparison of point estimates: the
+       equality test carries the evidence of a difference, not a pairwise
+       test).  The split's own mean is the yardstick rather than the pooled
+       theta, which is not an average of the split's thetas when conduct
+       differs (a misspecified pooled relation can lie below all of them).
+
+    Flagged market-periods are the rows in a flagged group or regime; flagged
+    markets are the markets holding such rows.  The break date is flagged when
+    the sup-Wald test rejects a constant theta at alpha; it says that conduct
+    changed for the panel as a whole at that date, not in particular markets.
+    """
+    _need_supply(res, "Lerner index")
+    level = res.study.inference.level
+    alpha = 1.0 - level
+    f = res.panel.frame
+    own: dict[str, np.ndarray] = {}
+    splits: list[FlaggedSplit] = []
+    notes: list[str] = []
+    for split in (res.groups, res.regimes):
+        if split is None:
+            continue
+        what = "groups" if split.kind == "group" else "regimes"
+        if split.equality_p >= alpha:
+            notes.append(f"equal conduct across {what} of '{split.column}' not rejected "
+                         f"(p = {split.equality_p:.3g})")
+            continue
+        weights = np.array([g.rows for g in split.groups], dtype=float)
+        average = float(np.average([g.theta for g in split.groups], weights=weights))
+        hit = [g for g in split.groups if g.p_holm < alpha and g.theta > average]
+        if not hit:
+            notes.append(f"no {split.kind} of '{split.column}' above the mean "
+                         f"\N{GREEK SMALL LETTER THETA} with Holm p < {alpha:.2g}")
+            continue
+        values = f[split.column].astype(str).str.strip().to_numpy()
+        theta = np.full(len(f), np.nan)
+        for g in hit:
+            mask = values == g.label
+            theta[mask] = g.theta
+            splits.append(FlaggedSplit(kind=split.kind, column=split.column, label=g.label,
+                                       theta=g.theta, p_holm=g.p_holm, average=average,
+                                       markets=int(f.loc[mask, MARKET].nunique())))
+        own[split.kind] = theta
+    break_date = break_at = None
+    if res.breaks is not None:
+        b = res.breaks
+        if b.p < alpha:
+            times = np.unique(f[TIME].to_numpy())
+            at = int(f.loc[f[PERIOD].astype(str) == b.date, TIME].iloc[0])
+            before = times[times < at]
+            break_date = b.date
+            break_at = 0.5 * (at + before[-1]) if len(before) else at - 0.5
+        else:
+            notes.append(f"no break in conduct at the {level:.0%} level "
+                         f"(sup-Wald p {_p(b.p)})")
+    if res.groups is None and res.regimes is None and res.breaks is None:
+        notes.append("no group, regime or break analysis in this study")
+    in_regime = np.isfinite(own["regime"]) if "regime" in own else np.zeros(len(f), bool)
+    return LernerFlags(
+        level=level, own_theta=own, splits=tuple(splits),
+        regime_periods=tuple(int(v) for v in np.unique(f.loc[in_regime, TIME].to_numpy())),
+        break_date=break_date, break_at=break_at, notes=tuple(notes),
+    )
+
+
+def flags_text(res: Results) -> str:
+    """One paragraph saying what the Lerner figure flags in these results, for the report.
+
+    Parameters
+    ----------
+    res : Results
+
+    Returns
+    -------
+    str
+        Plain text (no markup); empty for a demand-only study.
+    """
+    if res.supply is None:
+        return ""
+    fl = lerner_flags(res)
+    theta = "\N{GREEK SMALL LETTER THETA}"
+    parts = []
+    for sp in fl.splits:
+        parts.append(f"{sp.kind} '{sp.label}' of '{sp.column}' ({sp.markets} market"
+                     f"{'s' if sp.markets != 1 else ''}, {theta} = {sp.theta:.3f} against "
+                     f"{sp.average:.3f} on average across the {sp.kind}s, Holm-adjusted "
+                     f"p {_p(sp.p_holm)})")
+    if fl.break_date is not None and res.breaks is not None:
+        b = res.breaks
+        parts.append(f"a break in conduct from {b.date} on (sup-Wald p {_p(b.p)}; "
+                     f"{theta} {b.theta_before:.3f} before, {b.theta_after:.3f} after)")
+    text = ("Flagged in this run: " + "; ".join(parts) + "." if parts
+            else "Nothing is flagged in this run.")
+    if fl.notes:
+        rest = "; ".join(fl.notes)
+        text += " " + rest[0].upper() + rest[1:] + "."
+    return text
+
+
+def _p(p: float) -> str:
+    """A p-value after its verb: ``< 0.001`` or ``= 0.042``."""
+    return "< 0.001" if p < 0.001 else f"= {p:.3f}"
+
+
+def _short(text: str, limit: int = 18) -> str:
+    return _plain(text if len(text) <= limit else text[: limit - 1] + "\N{HORIZONTAL ELLIPSIS}")
+
+
+def _runs_of(positions: Sequence[int]) -> list[tuple[int, int]]:
+    """Consecutive runs ``(first, last)`` of sorted integer positions."""
+    out: list[tuple[int, int]] = []
+    for p in positions:
+        if out and p == out[-1][1] + 1:
+            out[-1] = (out[-1][0], p)
+        else:
+            out.append((p, p))
+    return out
+
+
+#: Up to this many flagged markets, each is also drawn as a thin line.
+_FEW_MARKETS = 4
+#: Longest legend entry (characters at 8 pt) that still fits two legend columns in 7 in.
+_LEGEND_COLUMN_CHARS = 52
+_FLAG_COLOURS = {"group": PALETTE["vermillion"], "regime": PALETTE["purple"]}
+
+
 def lerner_figure(res: Results) -> Figure:
-    """Lerner index per period: median and interquartile band across markets.
+    """Lerner index per period: median and interquartile band across markets, with the
+    markets, regime periods and break date flagged by the time and space analyses.
 
     Parameters
     ----------
@@ -557,15 +786,32 @@ def lerner_figure(res: Results) -> Figure:
     Under the estimated theta, ``L = (P - MC) / P = theta / |elasticity|``.
     When the Cournot benchmark is available its median Lerner index
     (``H / |elasticity|``) is drawn for comparison.
+
+    What is flagged is defined in :func:`lerner_flags`.  The median Lerner
+    index of the flagged groups' markets, and that of the flagged regimes'
+    market-periods, are drawn as their own lines under the flagged group's or
+    regime's own theta (``L = theta_g Q* / P``: under the pooled theta a
+    market that prices higher faces more elastic demand and would show a
+    *lower* margin); each flagged market is also a thin line when there are at
+    most four.  Periods of a flagged regime are shaded, and a significant break
+    is a vertical line between the last period before it and its first period,
+    with the median Lerner index under the break's two thetas.
+    Analyses that flagged nothing, or their absence, are stated in the legend.
     """
     _need_supply(res, "Lerner index")
     s = res.supply
     assert s is not None
     obs = res.derived.observations
     t, mapping = _period_axis(res)
+    flags = lerner_flags(res)
+    lerner = obs["lerner_estimated"].to_numpy(dtype=float)
     fig = _new_figure()
     ax = fig.add_subplot()
-    band = _by_period(obs["lerner_estimated"].to_numpy(dtype=float), t, [0.25, 0.5, 0.75])
+    regimes = ", ".join(_short(sp.label) for sp in flags.splits if sp.kind == "regime")
+    for i, (a, b) in enumerate(_runs_of(flags.regime_periods)):
+        ax.axvspan(a - 0.5, b + 0.5, color=PALETTE["yellow"], alpha=0.3, linewidth=0,
+                   label=f"periods of flagged regime {regimes}" if i == 0 else None)
+    band = _by_period(lerner, t, [0.25, 0.5, 0.75])
     ax.fill_between(band.index, band[0.25].to_numpy(), band[0.75].to_numpy(),
                     color=PALETTE["sky"], alpha=0.45, linewidth=0,
                     label="interquartile range across markets")
@@ -575,12 +821,192 @@ def lerner_figure(res: Results) -> Figure:
         med = _by_period(obs["lerner_cournot"].to_numpy(dtype=float), t, [0.5])[0.5]
         ax.plot(med.index, med.to_numpy(), color=PALETTE["orange"], lw=1.4, ls="--",
                 label="median under Cournot (H / |elasticity|)")
+    market = obs["market"].astype(str).to_numpy()
+    per_price = obs["qstar"].to_numpy(dtype=float) / obs["price"].to_numpy(dtype=float)
+    for kind, own in flags.own_theta.items():
+        mask = np.isfinite(own)
+        lerner_own = own * per_price  # L = theta Q* / P under the row's own theta
+        colour = _FLAG_COLOURS[kind]
+        flagged = sorted(set(market[mask].tolist()))
+        if len(flagged) <= _FEW_MARKETS:
+            for i, m in enumerate(flagged):
+                mine = mask & (market == m)
+                line = _by_period(lerner_own[mine], t[mine], [0.5])[0.5]
+                ax.plot(line.index, line.to_numpy(), color=colour, lw=0.8, alpha=0.6,
+                        label=f"each market of a flagged {kind}" if i == 0 else None)
+        names = ", ".join(_short(sp.label) for sp in flags.splits if sp.kind == kind)
+        med = _by_period(np.where(mask, lerner_own, np.nan), t, [0.5])[0.5]
+        n = len(flagged)
+        ax.plot(med.index, med.to_numpy(), color=colour, lw=2,
+                ls="-." if kind == "group" else (0, (1, 1)),
+                label=f"flagged {kind} {names} ({n} market{'s' if n != 1 else ''}), "
+                      "own \N{GREEK SMALL LETTER THETA}")
+    if flags.break_at is not None and res.breaks is not None:
+        b = res.breaks
+        ax.axvline(flags.break_at, color=PALETTE["blue"], lw=1.6, ls=(0, (5, 2)),
+                   label=f"break in conduct from {_plain(b.date)} (sup-Wald p {_p(b.p)})")
+        split = np.where(t > flags.break_at, b.theta_after, b.theta_before) * per_price
+        med = _by_period(split, t, [0.5])[0.5]
+        ax.plot(med.index, med.to_numpy(), color=PALETTE["blue"], lw=1.4,
+                label=f"median under \N{GREEK SMALL LETTER THETA} {_num(b.theta_before)} "
+                      f"before, {_num(b.theta_after)} from the break")
+    for i, note in enumerate(flags.notes):
+        lead = "nothing flagged: " if i == 0 and not flags.anything else ""
+        ax.plot([], [], " ", label=lead + _plain(note))
     _set_period_ticks(ax, mapping, res.study.panel.period,
                       res.panel.description.period_kind)
     ax.set_ylabel("Lerner index (P \N{MINUS SIGN} MC) / P")
     ax.set_title("Price-cost margin over time", fontsize=10)
-    fig.legend(loc="outside lower center", ncol=2, fontsize=8, frameon=False)
+    labels = ax.get_legend_handles_labels()[1]
+    ncol = 2 if max(len(x) for x in labels) <= _LEGEND_COLUMN_CHARS else 1
+    fig.set_size_inches(_SIZE[0], _SIZE[1] + 0.17 * max(0, math.ceil(len(labels) / ncol) - 2))
+    fig.legend(loc="outside lower center", ncol=ncol, fontsize=8, frameon=False)
     ax.grid(alpha=0.3)
+    return fig
+
+
+# ----------------------------------------------------------------------------------------
+# Two runs side by side
+# ----------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class RunSnapshot:
+    """What the comparison figure needs of one run.
+
+    Attributes
+    ----------
+    run_id : str
+    role : str
+        How the figure names the run (``previous run``, ``this run``, ``earlier``).
+    conduct : mapping or None
+        The summary's ``conduct`` section (``theta``, ``ci``, ``level`` used); None for a
+        demand-only run.
+    lerner : pandas.Series or None
+        Median Lerner index across markets under the estimated conduct, indexed by
+        period label; None when the run has none.
+    """
+
+    run_id: str
+    role: str
+    conduct: Mapping[str, Any] | None
+    lerner: pd.Series | None
+
+    @classmethod
+    def of(cls, summary: Mapping[str, Any], observations: pd.DataFrame | None,
+           role: str) -> RunSnapshot:
+        """Build from a run's summary and its observations.
+
+        Parameters
+        ----------
+        summary : mapping
+            The run's ``summary.json`` document.
+        observations : pandas.DataFrame or None
+            The run's ``observations.csv`` (columns ``period`` and ``lerner_estimated``
+            used; others ignored).
+        role : str
+            How the figure names the run.
+
+        Returns
+        -------
+        RunSnapshot
+        """
+        lerner = None
+        if observations is not None and {"period", "lerner_estimated"} <= set(observations):
+            values = pd.to_numeric(observations["lerner_estimated"], errors="coerce")
+            lerner = values.groupby(observations["period"].astype(str)).median().dropna()
+        run = summary.get("run") or {}
+        return cls(run_id=str(run.get("id") or "unnamed"), role=role,
+                   conduct=summary.get("conduct") or None, lerner=lerner)
+
+
+def _calendar(labels: Sequence[str]) -> tuple[dict[str, int], str]:
+    """Time position of each period label, parsed the way the panel parses periods."""
+    try:
+        _, pos, kind = parse_periods(pd.Series(list(labels), dtype=object), "period",
+                                     Path("observations.csv"), np.arange(len(labels)) + 2)
+    except ConductError:  # labels written by hand: keep their sorted order
+        return {lab: i for i, lab in enumerate(sorted(labels))}, "integer"
+    return {lab: int(p) for lab, p in zip(labels, pos, strict=True)}, kind
+
+
+def run_comparison_figure(earlier: RunSnapshot, later: RunSnapshot, *,
+                          period_column: str = "period") -> Figure:
+    """Two runs side by side: theta with its interval, and the median Lerner index by period.
+
+    Parameters
+    ----------
+    earlier, later : RunSnapshot
+        The two runs, earlier first.
+    period_column : str
+        The study's period column, for the axis label.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    Left: each run's conduct parameter with its Wald interval at the run's
+    level; dotted lines mark competitive (0) and collusive (1) conduct.  Right:
+    each run's median Lerner index across markets per period on one calendar
+    (labels parsed the way the panel parses periods), so new periods extend the
+    later run to the right and revisions show where both runs cover the same
+    period.  The earlier run is dashed blue with squares, the later solid
+    vermillion with circles, so the two differ without colour too.
+    """
+    fig = _new_figure((9.0, 4.4))
+    left, right = fig.subplots(1, 2, width_ratios=[1, 2])
+    runs = (earlier, later)
+    # (colour, line style, marker, width): the earlier run wide underneath, the later one
+    # narrow on top, so both stay visible where they coincide
+    styles = ((PALETTE["blue"], "--", "s", 2.8), (PALETTE["vermillion"], "-", "o", 1.4))
+    theta_sym = "\N{GREEK SMALL LETTER THETA}"
+    level = None
+    for y, (run, (colour, _, marker, _)) in enumerate(zip(runs, styles, strict=True)):
+        c = run.conduct or {}
+        if c.get("theta") is None:
+            left.text(0.5, y, "not estimated", transform=left.get_yaxis_transform(),
+                      ha="center", va="center", fontsize=8, color=colour)
+            continue
+        ci = c.get("ci")
+        if ci and None not in ci:  # a segment, not error bars: any ends are drawn as given
+            left.plot([float(ci[0]), float(ci[1])], [y, y], color=colour, lw=2, marker="|",
+                      ms=12)
+        left.plot([float(c["theta"])], [y], color=colour, marker=marker, ms=7, ls="none")
+        level = c.get("level") or level
+    for bench in (0.0, 1.0):
+        left.axvline(bench, color=_GREY, lw=1, ls=":")
+    left.set_yticks([0, 1], [f"{r.role}\n{_plain(r.run_id)}" for r in runs], fontsize=7)
+    left.set_ylim(-0.6, 1.6)
+    interval = f"{level:.0%} Wald interval" if level else "Wald interval"
+    left.set_xlabel(f"conduct parameter {theta_sym}, {interval}\n"
+                    "(0 competitive, 1 collusive)")
+    left.set_title("Conduct parameter", fontsize=10)
+    left.grid(alpha=0.3, axis="x")
+    series = [r.lerner for r in runs if r.lerner is not None and len(r.lerner)]
+    if series:
+        labels = list(dict.fromkeys(str(v) for s in series for v in s.index))
+        pos, kind = _calendar(labels)
+        for run, (colour, ls, marker, width) in zip(runs, styles, strict=True):
+            if run.lerner is None or not len(run.lerner):
+                continue
+            t = np.array([pos[str(v)] for v in run.lerner.index])
+            med = _by_period(run.lerner.to_numpy(dtype=float), t, [0.5])[0.5]
+            right.plot(med.index, med.to_numpy(), color=colour, ls=ls, lw=width, marker=marker,
+                       ms=3)
+        _set_period_ticks(right, {p: lab for lab, p in pos.items()}, _plain(period_column),
+                          kind)
+    else:
+        right.text(0.5, 0.5, "no Lerner index in either run (no supply relation)",
+                   transform=right.transAxes, ha="center", va="center", fontsize=8)
+        right.set_xlabel(f"period ({_plain(period_column)})")
+    right.set_ylabel("median Lerner index (P \N{MINUS SIGN} MC) / P")
+    right.set_title("Lerner index across markets, by period", fontsize=10)
+    right.grid(alpha=0.3)
+    handles = [Line2D([], [], color=c, ls=ls, marker=m, lw=w) for c, ls, m, w in styles]
+    fig.legend(handles, [f"{r.role}: {_plain(r.run_id)}" for r in runs],
+               loc="outside lower center", ncol=2, fontsize=8, frameon=False)
     return fig
 
 
@@ -607,6 +1033,9 @@ class FigureSpec:
         Skipped for demand-only studies.
     when : callable or None
         Further condition for the figure to apply (e.g. a rolling window was asked for).
+    note : callable or None
+        ``note(results) -> str``: what this run's figure shows, said in words under the
+        caption (e.g. which markets are flagged).
     """
 
     name: str
@@ -615,6 +1044,7 @@ class FigureSpec:
     build: Callable[[Results, Mapping[str, Any] | None], Figure]
     needs_supply: bool
     when: Callable[[Results], bool] | None = None
+    note: Callable[[Results], str] | None = None
 
 
 #: The figures in report order.
@@ -643,8 +1073,18 @@ FIGURES: tuple[FigureSpec, ...] = (
                lambda r, s: marginal_cost_figure(r), True),
     FigureSpec("lerner", "Lerner index",
                "Median Lerner index across markets in each period under the estimated "
-               "conduct, with the interquartile band.",
-               lambda r, s: lerner_figure(r), True),
+               "conduct, with the interquartile band. A group of markets or a known regime "
+               "is flagged when equal conduct across its split is rejected at the study's "
+               "level, its theta is above zero after Holm's adjustment and above the "
+               "split's mean theta (weighted by rows). A flagged group's markets "
+               "(dash-dot) and a flagged regime's market-periods (dotted) have their median "
+               "Lerner index drawn under their own theta, each market also as a thin line "
+               "when there are at most four; "
+               "the periods of a flagged regime are shaded. A vertical line marks a break "
+               "in conduct the sup-Wald test finds at the study's level, with the median "
+               "Lerner index under the thetas before and after it. The legend says when "
+               "an analysis flagged nothing.",
+               lambda r, s: lerner_figure(r), True, note=flags_text),
     FigureSpec("rolling", "Rolling-window conduct",
                "Conduct parameter estimated on rolling windows of periods (demand from the "
                "whole panel), with its confidence band, against the competitive, Cournot and "

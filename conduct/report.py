@@ -4,7 +4,10 @@ The page is rendered from the Jinja2 template ``conduct/templates/report.html``
 with autoescaping on, so every name that comes from the user's data (market
 labels, column names, the study title) is shown as text, never run as markup.
 Figures are embedded as base64 PNG data URIs and the style sheet is inline:
-the file makes no network request and holds no external address.
+the file makes no network request and holds no external address.  When the
+run has a previous run, its comparison section holds a table of headline
+numbers and a figure of both runs (:func:`comparison_figure`, drawn from the
+previous run's summary and observations, written as ``figures/comparison.png``).
 
 The verdict block at the top is available on its own, from plain summary
 values only (:func:`verdict_text`, :func:`verdict_html`), so a notebook
@@ -15,21 +18,31 @@ from __future__ import annotations
 
 import base64
 import shlex
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
+from matplotlib.figure import Figure
 
-from conduct.figures import available_figures, figure_png, save_figures
+from conduct.figures import (
+    RunSnapshot,
+    available_figures,
+    figure_png,
+    run_comparison_figure,
+    save_figures,
+)
 from conduct.panel import MARKET
 from conduct.pipeline import Results
 from conduct.summary import CAUTION
 from conduct.tables import TABLES, build_tables, format_value, header_text, write_tables
 
 __all__ = [
+    "COMPARISON_FIGURE",
     "SECTIONS",
+    "comparison_applies",
+    "comparison_figure",
     "comparison_rows",
     "render_report",
     "verdict_html",
@@ -323,23 +336,93 @@ def _table_view(name: str, frame: pd.DataFrame) -> dict[str, Any]:
     }
 
 
+def _png(name: str, build: Callable[[], Figure], figures: Mapping[str, bytes] | None,
+         folder: Path | None) -> str:
+    """A figure as a data URI: given bytes, else ``<folder>/figures/<name>.png``, else drawn."""
+    data = (figures or {}).get(name)
+    path = folder / "figures" / f"{name}.png" if folder is not None else None
+    if data is None and path is not None and path.is_file():
+        data = path.read_bytes()
+    if data is None:
+        data = figure_png(build())
+    return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
+
+
 def _figure_views(res: Results, summary: Mapping[str, Any],
                   figures: Mapping[str, bytes] | None, folder: Path | None
                   ) -> list[dict[str, Any]]:
     out = []
     for spec in available_figures(res):
-        data = (figures or {}).get(spec.name)
-        path = folder / "figures" / f"{spec.name}.png" if folder is not None else None
-        if data is None and path is not None and path.is_file():
-            data = path.read_bytes()
-        if data is None:
-            data = figure_png(spec.build(res, summary))
         out.append({
             "name": spec.name, "title": spec.title, "caption": spec.caption,
-            "src": "data:image/png;base64," + base64.b64encode(data).decode("ascii"),
+            "note": spec.note(res) if spec.note is not None else "",
+            "src": _png(spec.name, lambda spec=spec: spec.build(res, summary), figures, folder),
             "section": _FIGURE_SECTION.get(spec.name, "conduct"),
         })
     return out
+
+
+#: File stem of the comparison figure in a later run's ``figures/``.
+COMPARISON_FIGURE = "comparison"
+
+
+def comparison_applies(summary: Mapping[str, Any], previous: Mapping[str, Any] | None
+                       ) -> bool:
+    """Whether a run's report shows the figure comparing it with the previous run.
+
+    It does when there is a previous run and either run estimated conduct (with demand
+    only, the comparison table says all there is).
+    """
+    return previous is not None and bool(summary.get("conduct") or previous.get("conduct"))
+
+
+def comparison_figure(res: Results, summary: Mapping[str, Any], previous: Mapping[str, Any],
+                      previous_observations: pd.DataFrame | None = None) -> Figure:
+    """The previous run against this one (see :func:`conduct.figures.run_comparison_figure`).
+
+    Parameters
+    ----------
+    res : Results
+        This run's results.
+    summary : mapping
+        This run's summary.
+    previous : mapping
+        The previous run's summary.
+    previous_observations : pandas.DataFrame or None
+        The previous run's ``observations.csv``; without it, only theta is compared.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    return run_comparison_figure(
+        RunSnapshot.of(previous, previous_observations, "previous run"),
+        RunSnapshot.of(summary, res.derived.observations, "this run"),
+        period_column=res.study.panel.period)
+
+
+def _comparison_views(res: Results, summary: Mapping[str, Any],
+                      previous: Mapping[str, Any] | None,
+                      previous_observations: pd.DataFrame | None,
+                      figures: Mapping[str, bytes] | None, folder: Path | None
+                      ) -> list[dict[str, Any]]:
+    if previous is None or not comparison_applies(summary, previous):
+        return []
+    lerner = "" if previous_observations is not None else (
+        " The previous run's observations were not available, so only theta is compared.")
+    return [{
+        "name": COMPARISON_FIGURE, "title": "This run against the previous run",
+        "caption": "Left: the conduct parameter with its Wald interval in the previous run "
+                   "(dashed, squares) and in this run (solid, circles); dotted lines mark "
+                   "competitive (0) and collusive (1) conduct. Right: the median Lerner "
+                   "index across markets in each period, both runs on one calendar; where "
+                   "the lines part over the same periods, revised data or the re-estimated "
+                   "demand and conduct moved the margins." + lerner,
+        "note": "",
+        "src": _png(COMPARISON_FIGURE, lambda: comparison_figure(
+            res, summary, previous, previous_observations), figures, folder),
+        "section": "comparison",
+    }]
 
 
 def _facts(pairs: Sequence[tuple[str, Any]]) -> list[tuple[str, str]]:
@@ -520,6 +603,7 @@ def _extra_analyses(summary: Mapping[str, Any]) -> list[dict[str, Any]]:
 
 def render_report(res: Results, summary: Mapping[str, Any], *,
                   previous: Mapping[str, Any] | None = None,
+                  previous_observations: pd.DataFrame | None = None,
                   figures: Mapping[str, bytes] | None = None,
                   folder: Path | None = None) -> str:
     """Render ``report.html`` as a string.
@@ -531,6 +615,9 @@ def render_report(res: Results, summary: Mapping[str, Any], *,
         The run summary (as written to ``summary.json``; provenance optional).
     previous : mapping or None
         The previous run's summary, for the comparison section.
+    previous_observations : pandas.DataFrame or None
+        The previous run's ``observations.csv``, for the comparison figure's Lerner
+        index by period.
     figures : mapping of str to bytes, or None
         PNG bytes by figure name; missing figures are read from
         ``<folder>/figures/<name>.png`` when present, else rendered here.
@@ -565,7 +652,9 @@ def render_report(res: Results, summary: Mapping[str, Any], *,
         "has_supply": res.supply is not None,
         "conduct": _conduct_facts(summary),
         "tables": views,
-        "figures": _figure_views(res, summary, figures, folder),
+        "figures": [*_figure_views(res, summary, figures, folder),
+                    *_comparison_views(res, summary, previous, previous_observations,
+                                       figures, folder)],
         "menu": summary.get("menu"),
         "extra": _extra_analyses(summary),
         "previous": previous is not None,
@@ -577,7 +666,8 @@ def render_report(res: Results, summary: Mapping[str, Any], *,
 
 
 def write_report(res: Results, summary: Mapping[str, Any], folder: Path,
-                 previous: Mapping[str, Any] | None = None) -> Path:
+                 previous: Mapping[str, Any] | None = None,
+                 previous_observations: pd.DataFrame | None = None) -> Path:
     """Write ``<folder>/report.html``.
 
     Parameters
@@ -589,19 +679,24 @@ def write_report(res: Results, summary: Mapping[str, Any], folder: Path,
         The run folder (must exist); figures already in ``figures/`` are reused.
     previous : mapping or None
         The previous run's summary, for the comparison section.
+    previous_observations : pandas.DataFrame or None
+        The previous run's ``observations.csv``, for the comparison figure.
 
     Returns
     -------
     Path
     """
     path = Path(folder) / "report.html"
-    path.write_text(render_report(res, summary, previous=previous, folder=Path(folder)),
+    path.write_text(render_report(res, summary, previous=previous,
+                                  previous_observations=previous_observations,
+                                  folder=Path(folder)),
                     encoding="utf-8")
     return path
 
 
 def write_outputs(res: Results, summary: Mapping[str, Any], folder: Path,
-                  previous: Mapping[str, Any] | None = None) -> list[Path]:
+                  previous: Mapping[str, Any] | None = None,
+                  previous_observations: pd.DataFrame | None = None) -> list[Path]:
     """Write figures, tables and the report into a run folder.
 
     Parameters
@@ -613,15 +708,23 @@ def write_outputs(res: Results, summary: Mapping[str, Any], folder: Path,
         The run folder (must exist).
     previous : mapping or None
         The previous run's summary.
+    previous_observations : pandas.DataFrame or None
+        The previous run's ``observations.csv``, for the comparison figure.
 
     Returns
     -------
     list of Path
-        Every file written: ``figures/*.png``, the table CSV files,
-        ``tables.tex`` and ``report.html``.
+        Every file written: ``figures/*.png`` (with ``figures/comparison.png`` when
+        there is a previous run to compare with), the table CSV files, ``tables.tex``
+        and ``report.html``.
     """
     folder = Path(folder)
     paths = save_figures(res, folder, summary=summary)
+    if previous is not None and comparison_applies(summary, previous):
+        path = folder / "figures" / f"{COMPARISON_FIGURE}.png"
+        path.write_bytes(figure_png(comparison_figure(res, summary, previous,
+                                                      previous_observations)))
+        paths.append(path)
     paths += write_tables(res, summary, folder)
-    paths.append(write_report(res, summary, folder, previous))
+    paths.append(write_report(res, summary, folder, previous, previous_observations))
     return paths

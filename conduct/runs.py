@@ -147,6 +147,15 @@ def _previous(runs: Path) -> tuple[dict[str, Any] | None, pd.DataFrame | None, s
     return None, None, None
 
 
+def _previous_observations(folder: Path) -> pd.DataFrame | None:
+    """A run's ``observations.csv`` as far as the report's comparison figure needs it."""
+    try:
+        return pd.read_csv(folder / "observations.csv", dtype={"period": str},
+                           usecols=lambda c: c in ("period", "lerner_estimated"))
+    except (OSError, ValueError):
+        return None
+
+
 def write_run(res: Results, *, label: str | None = None,
               argv: Sequence[str] = (),
               alerts: Sequence[AlertSpec] = ()) -> tuple[Path, dict[str, Any]]:
@@ -220,7 +229,8 @@ def write_run(res: Results, *, label: str | None = None,
         summary["alerts"] = met
         if met:
             summary["warnings"] = [*met, *summary["warnings"]]
-        write_outputs(res, summary, tmp, previous=prev_summary)
+        prev_obs = _previous_observations(runs / prev_id) if prev_id is not None else None
+        write_outputs(res, summary, tmp, previous=prev_summary, previous_observations=prev_obs)
         (tmp / "study.toml").write_text(res.study.text, encoding="utf-8")
         (tmp / "run.log").write_text(res.summary() + "\n", encoding="utf-8")
         # no interrupt between the rename and the history row (SIGKILL aside, which the

@@ -20,6 +20,7 @@ import struct
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import pytest
 from conftest import BASE_SPEC, cournot_frame, to_toml
@@ -28,7 +29,7 @@ from matplotlib.figure import Figure
 import conduct
 from conduct import figures, report, tables
 from conduct.presets import REGION_NAMES
-from conduct.simulate import SimulationSpec
+from conduct.simulate import Episode, SimulationSpec
 from conduct.summary import CAUTION, build_summary
 
 # PNG sizes at the default dpi: the smallest figure is 6 x 4.2 in (900 x 630 px at 150 dpi);
@@ -369,3 +370,241 @@ def test_regimes_section_shows_break_and_rolling(tmp_path) -> None:
     assert "Rolling windows of 8 periods" in html
     assert "No regimes or breaks analysed." not in html
     assert (folder / "figures" / "rolling.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+# ----------------------------------------------------------------------------------------
+# Lerner figure: markets, regime periods and break date flagged by the time/space analyses
+# ----------------------------------------------------------------------------------------
+
+# Simulated 20 markets x 16 quarters from 2013Q1; period 9 is 2015Q1.
+BREAK_PERIOD, BREAK_LABEL = 9, "2015Q1"
+# Tolerance for recomputing a drawn median from the observations (same arithmetic, other
+# order of operations).
+SAME_NUMBER = 1e-12
+
+
+def _split_study(root: Path, *, episodes: tuple[Episode, ...], district: str,
+                 regimes: bool, break_test: bool) -> conduct.Results:
+    """Estimate a simulated study with a group column ``district`` (one letter per market
+    in ``district``) and, optionally, a known regime column (``episode`` / ``normal``)."""
+    from conduct.presets import write_study
+
+    spec = SimulationSpec(markets=20, periods=16, seed=5, break_test=break_test,
+                          episodes=episodes)
+    study = write_study(root, spec)
+    panel = pd.read_csv(study.parent / "panel.csv")
+    names = list(dict.fromkeys(panel["region"]))
+    panel["district"] = panel["region"].map(dict(zip(names, district, strict=True)))
+    lines = 'groups = "district"\n'
+    if regimes:
+        truth = pd.read_csv(study.parent / "truth_observations.csv")
+        panel["regime"] = np.where(truth["episode"].to_numpy() > 0, "episode", "normal")
+        lines += 'regimes = "regime"'
+    else:
+        lines += 'regimes = ""'
+    panel.to_csv(study.parent / "panel.csv", index=False)
+    study.write_text(study.read_text(encoding="utf-8").replace('regimes = ""', lines),
+                     encoding="utf-8")
+    return conduct.estimate(study)
+
+
+@pytest.fixture(scope="module")
+def colluding_group(tmp_path_factory: pytest.TempPathFactory) -> conduct.Results:
+    # the first four markets collude throughout and form district A; B and C are Cournot
+    return _split_study(tmp_path_factory.mktemp("group"),
+                        episodes=(Episode("collusive", (1, 2, 3, 4), 1, 16),),
+                        district="AAAA" + "B" * 8 + "C" * 8, regimes=False, break_test=False)
+
+
+@pytest.fixture(scope="module")
+def collusion_from_2015(tmp_path_factory: pytest.TempPathFactory) -> conduct.Results:
+    # every market colludes from 2015Q1 (a known regime and a break); districts are
+    # drawn across that, so they do not differ
+    return _split_study(tmp_path_factory.mktemp("break"),
+                        episodes=(Episode("collusive", tuple(range(1, 21)), BREAK_PERIOD, 16),),
+                        district="ABC" * 6 + "AB", regimes=True, break_test=True)
+
+
+def _legend(fig: Figure) -> list[str]:
+    return [t.get_text() for legend in fig.legends for t in legend.get_texts()]
+
+
+def _line(fig: Figure, start: str) -> Any:
+    found = [ln for ln in fig.axes[0].lines if ln.get_label().startswith(start)]
+    assert len(found) == 1, [ln.get_label() for ln in fig.axes[0].lines]
+    return found[0]
+
+
+def _own_theta_median(res: conduct.Results, rows: np.ndarray, theta: float) -> np.ndarray:
+    """Median Lerner index by period of ``rows`` under ``theta``, from the observations."""
+    obs = res.derived.observations[rows]
+    lerner = theta * obs["qstar"] / obs["price"]
+    t = res.panel.frame.loc[rows, "_t"]
+    return lerner.groupby(t.to_numpy()).median().sort_index().to_numpy()
+
+
+def test_lerner_figure_draws_the_flagged_group_under_its_own_theta(
+        colluding_group: conduct.Results) -> None:
+    res = colluding_group
+    flags = figures.lerner_flags(res)
+    assert [(s.kind, s.label, s.markets) for s in flags.splits] == [("group", "A", 4)]
+    assert flags.break_date is None and not flags.regime_periods
+    group = res.groups
+    assert group is not None and group.equality_p < 0.05
+    a = next(g for g in group.groups if g.label == "A")
+    frame = res.panel.frame
+    in_a = (frame["district"] == "A").to_numpy()
+    assert set(frame.loc[in_a, "region"]) == set(frame["region"].unique()[:4])  # planted
+    np.testing.assert_array_equal(np.isfinite(flags.own_theta["group"]), in_a)
+
+    fig = figures.lerner_figure(res)
+    labels = _legend(fig)
+    assert "flagged group A (4 markets), own \N{GREEK SMALL LETTER THETA}" in labels
+    assert "each market of a flagged group" in labels
+    assert not any(lab.startswith("nothing flagged") for lab in labels)
+    flagged = _line(fig, "flagged group A")
+    np.testing.assert_allclose(flagged.get_ydata(), _own_theta_median(res, in_a, a.theta),
+                               rtol=SAME_NUMBER)
+    thin = [ln for ln in fig.axes[0].lines
+            if ln.get_color() == flagged.get_color() and ln is not flagged]
+    assert len(thin) == 4  # one per flagged market
+    # the colluders' margins under their own theta lie above the overall median
+    overall = _line(fig, "median, estimated")
+    assert np.nanmedian(flagged.get_ydata() - overall.get_ydata()) > 0
+    assert not any(p.get_label().startswith("periods of") for p in fig.axes[0].patches)
+    assert not any(ln.get_label().startswith("break in conduct") for ln in fig.axes[0].lines)
+
+
+def test_lerner_figure_marks_regime_periods_and_the_break(
+        collusion_from_2015: conduct.Results) -> None:
+    res = collusion_from_2015
+    flags = figures.lerner_flags(res)
+    frame = res.panel.frame
+    t_of = dict(zip(frame["_period"].astype(str), frame["_t"], strict=False))
+    times = sorted(set(frame["_t"]))
+    assert [(s.kind, s.label) for s in flags.splits] == [("regime", "episode")]
+    assert flags.regime_periods == tuple(times[BREAK_PERIOD - 1:])
+    assert flags.break_date == BREAK_LABEL
+    assert flags.break_at == t_of[BREAK_LABEL] - 0.5
+    assert flags.notes and flags.notes[0].startswith(
+        "equal conduct across groups of 'district' not rejected")
+
+    fig = figures.lerner_figure(res)
+    ax = fig.axes[0]
+    labels = _legend(fig)
+    # the break: a vertical line between 2014Q4 and 2015Q1, named in the legend
+    brk = _line(fig, f"break in conduct from {BREAK_LABEL}")
+    assert list(brk.get_xdata()) == [flags.break_at, flags.break_at]
+    assert any(lab.startswith("median under \N{GREEK SMALL LETTER THETA}") for lab in labels)
+    # the regime's periods shaded, from half a period before 2015Q1 to after the last one
+    shade = [p for p in ax.patches if p.get_label() == "periods of flagged regime episode"]
+    assert len(shade) == 1
+    xs = shade[0].get_patch_transform().transform(shade[0].get_path().vertices)[:, 0]
+    assert (xs.min(), xs.max()) == (t_of[BREAK_LABEL] - 0.5, times[-1] + 0.5)
+    regime = next(g for g in res.regimes.groups if g.label == "episode")
+    in_regime = (frame["regime"] == "episode").to_numpy()
+    line = _line(fig, "flagged regime episode (20 markets)")
+    drawn = line.get_ydata()[np.isfinite(line.get_ydata())]
+    np.testing.assert_allclose(drawn, _own_theta_median(res, in_regime, regime.theta),
+                               rtol=SAME_NUMBER)
+    # the group analysis ran and flagged nothing: said so
+    assert any(lab.startswith("equal conduct across groups of 'district'") for lab in labels)
+    text = figures.flags_text(res)
+    assert text.startswith("Flagged in this run: regime 'episode' of 'regime'")
+    assert f"a break in conduct from {BREAK_LABEL} on" in text
+
+
+def test_lerner_figure_says_when_nothing_is_flagged(
+        run: Run, collusion_from_2015: conduct.Results) -> None:
+    # no analysis asked for
+    fig = figures.lerner_figure(run.results)
+    assert "nothing flagged: no group, regime or break analysis in this study" in _legend(fig)
+    assert not figures.lerner_flags(run.results).anything
+    assert [ln.get_label() for ln in fig.axes[0].lines if not ln.get_label().startswith(
+        ("median", "_"))] == ["nothing flagged: no group, regime or break analysis in this "
+                              "study"]
+    # analyses that ran and found nothing: no regime split, a break test that does not reject
+    b = collusion_from_2015.breaks
+    assert b is not None
+    quiet = dataclasses.replace(collusion_from_2015, regimes=None,
+                                breaks=dataclasses.replace(b, p=0.5))
+    flags = figures.lerner_flags(quiet)
+    assert not flags.anything and flags.break_at is None and not flags.own_theta
+    labels = _legend(figures.lerner_figure(quiet))
+    assert labels[-2].startswith("nothing flagged: equal conduct across groups of 'district'")
+    assert labels[-1] == "no break in conduct at the 95% level (sup-Wald p = 0.500)"
+    assert not any("break in conduct from" in lab or "flagged regime" in lab for lab in labels)
+    assert figures.flags_text(quiet).startswith("Nothing is flagged in this run.")
+
+
+def test_report_says_what_is_flagged_beside_the_lerner_figure(
+        collusion_from_2015: conduct.Results) -> None:
+    res = collusion_from_2015
+    fake = {spec.name: PNG_SIGNATURE for spec in figures.available_figures(res)}
+    html = report.render_report(res, build_summary(res), figures=fake)
+    block = html[html.index('id="figure-lerner"'):]
+    block = block[:block.index("</figure>")]
+    assert "Flagged in this run: regime &#39;episode&#39; of &#39;regime&#39;" in block
+    assert f"a break in conduct from {BREAK_LABEL} on" in block
+
+
+# ----------------------------------------------------------------------------------------
+# Comparison with the previous run: the figure in the later run's report
+# ----------------------------------------------------------------------------------------
+
+
+def _images(html: str) -> dict[str, bytes]:
+    found = re.findall(r'<figure class="plot" id="figure-([\w-]+)">\s*<img src="'
+                       r'data:image/png;base64,([^"]+)"', html)
+    return {name: base64.b64decode(data) for name, data in found}
+
+
+def test_second_run_embeds_the_comparison_figure(tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    from conduct.cli import main
+    from conduct.presets import write_study
+
+    study = write_study(tmp_path / "cmp", SimulationSpec(markets=10, periods=12, seed=4))
+    full = pd.read_csv(study.parent / "panel.csv")
+    last = full["quarter"].iloc[-1]
+    full[full["quarter"] != last].to_csv(study.parent / "panel.csv", index=False)
+    assert main(["estimate", str(study), "--quiet", "--label", "first"]) == 0
+    full.to_csv(study.parent / "panel.csv", index=False)  # one more quarter of data
+    assert main(["estimate", str(study), "--quiet", "--label", "second"]) == 0
+    runs = study.parent / "runs"
+
+    first = (runs / "first" / "report.html").read_text(encoding="utf-8")
+    assert "comparison" not in _images(first)
+    assert not (runs / "first" / "figures" / "comparison.png").exists()
+    assert "No previous run of this study to compare with." in first
+
+    second = (runs / "second" / "report.html").read_text(encoding="utf-8")
+    images = _images(second)
+    assert set(images) == set(_images(first)) | {"comparison"}
+    png = images["comparison"]
+    w, h = _png_size(png)
+    assert MIN_SIDE_PX <= w <= MAX_SIDE_PX and MIN_SIDE_PX <= h <= MAX_SIDE_PX
+    assert png == (runs / "second" / "figures" / "comparison.png").read_bytes()
+    section = second[second.index('id="comparison"'):second.index('id="provenance"')]
+    assert 'id="figure-comparison"' in section and "<code>first</code>" in section
+
+    # the figure itself: both runs' theta, and the later run's Lerner path one quarter longer
+    summaries = [json.loads((runs / r / "summary.json").read_text()) for r in ("first", "second")]
+    obs = [pd.read_csv(runs / r / "observations.csv", dtype={"period": str})
+           for r in ("first", "second")]
+    fig = figures.run_comparison_figure(
+        figures.RunSnapshot.of(summaries[0], obs[0], "previous run"),
+        figures.RunSnapshot.of(summaries[1], obs[1], "this run"), period_column="quarter")
+    left, right = fig.axes
+    thetas = [ln.get_xdata()[0] for ln in left.lines if ln.get_linestyle() == "None"]
+    assert thetas == [s["conduct"]["theta"] for s in summaries]
+    earlier, later = right.lines
+    assert later.get_xdata().max() == earlier.get_xdata().max() + 1
+    assert right.get_xlabel() == "period (quarter)"
+    assert _legend(fig) == ["previous run: first", "this run: second"]
+
+    # conduct compare still draws its figure from the two run folders
+    capsys.readouterr()
+    assert main(["compare", str(study), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert Path(doc["figure"]).read_bytes()[:8] == PNG_SIGNATURE
