@@ -412,12 +412,12 @@ def _comparison_views(res: Results, summary: Mapping[str, Any],
         " The previous run's observations were not available, so only theta is compared.")
     return [{
         "name": COMPARISON_FIGURE, "title": "This run against the previous run",
-        "caption": "Left: the conduct parameter with its Wald interval in the previous run "
-                   "(dashed, squares) and in this run (solid, circles); dotted lines mark "
-                   "competitive (0) and collusive (1) conduct. Right: the median Lerner "
-                   "index across markets in each period, both runs on one calendar; where "
-                   "the lines part over the same periods, revised data or the re-estimated "
-                   "demand and conduct moved the margins." + lerner,
+        "caption": "The previous run in blue (squares, dashed), this run in vermillion "
+                   "(circles, solid). Left: the conduct parameter with its Wald interval; "
+                   "dotted lines mark competitive (0) and collusive (1) conduct. Right: the "
+                   "median Lerner index across markets in each period, both runs on one "
+                   "calendar; where the lines part over the same periods, revised data or "
+                   "the re-estimated demand and conduct moved the margins." + lerner,
         "note": "",
         "src": _png(COMPARISON_FIGURE, lambda: comparison_figure(
             res, summary, previous, previous_observations), figures, folder),
