@@ -118,6 +118,7 @@ def absorb(
     x = np.asarray(x, dtype=float)
     if x.ndim == 1:
         x = x[:, None]
+    x = np.asfortranarray(x)  # columns contiguous: each is summed and gathered on its own
     if not groups:
         return Absorbed(x - x.mean(axis=0), 1, 0, "none")
     counts = [np.bincount(g) for g in groups]

@@ -194,8 +194,14 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
 def group_sums(codes: np.ndarray, a: np.ndarray) -> np.ndarray:
     """Column sums of ``a`` (n, p) within each code 0..G-1, as a (G, p) array."""
     g = int(codes.max()) + 1
+    if not a.shape[1]:
+        return np.zeros((g, 0))
+    if len(codes) > 1 and np.all(codes[1:] >= codes[:-1]):  # rows sorted by group (panel order)
+        starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+        if len(starts) == g:
+            return np.add.reduceat(a, starts, axis=0)
     return np.column_stack([np.bincount(codes, weights=a[:, j], minlength=g)
-                            for j in range(a.shape[1])]) if a.shape[1] else np.zeros((g, 0))
+                            for j in range(a.shape[1])])
 
 
 def cluster_cov(psi: np.ndarray, cov: CovSpec, k: int) -> np.ndarray:
@@ -292,6 +298,7 @@ def fit_iv(
     overid: bool = True,
     instrument_names: tuple[str, ...] | None = None,
     checked: bool = False,
+    projection: Projection | None = None,
 ) -> IVFit:
     """Fit a linear IV regression through linearmodels (or the equal array path).
 
@@ -320,6 +327,8 @@ def fit_iv(
         Names of the excluded instruments, for messages.
     checked : bool
         The design was already checked by :func:`check_design` (skip the check).
+    projection : Projection or None
+        The design's first stage when already computed (2SLS without HAC only).
 
     Returns
     -------
@@ -347,9 +356,10 @@ def fit_iv(
         x, z = check_design(exog, endog, instruments, names, instrument_names)
     z_cond = condition_number(z) if not checked else 1.0
     if estimator == "2sls" and cov.kind != "hac":
-        fit = replace(fit_2sls_arrays(y, x, z, names, cov, j_df=kz - ke), z_condition=z_cond)
+        proj = projection if projection is not None else Projection(x, z)
+        fit = replace(proj.fit(y, names, cov, j_df=kz - ke), z_condition=z_cond)
         if overid and kz > ke and _enough_clusters(cov, kx + kz) and cov.clusters2 is None:
-            j = hansen_j(y, x, z, cov)
+            j = hansen_j(y, x, z, cov, resid=fit.resid)
             fit = replace(fit, j_stat=j, j_p=float(stats.chi2.sf(j, kz - ke)),
                           j_convention=_j_convention(cov))
         return fit
@@ -403,7 +413,8 @@ def fit_iv(
     )
 
 
-def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec) -> float:
+def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec,
+             resid: np.ndarray | None = None) -> float:
     """Hansen's J at two-step efficient GMM, as linearmodels ``IVGMM`` computes it.
 
     Parameters
@@ -412,6 +423,9 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec) -> float
         (n,), (n, k) regressors and (n, m) instruments (exogenous columns in both).
     cov : CovSpec
         Homoskedastic (Sargan form), robust or one-way cluster weight.
+    resid : numpy.ndarray or None
+        The 2SLS residuals of ``y`` on ``x`` with instruments ``z`` when already
+        known (they are recomputed otherwise).
 
     Returns
     -------
@@ -426,10 +440,11 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec) -> float
     linearmodels 7.1 ``IVGMM(...).j_stat``.
     """
     n = len(y)
-    q, _ = np.linalg.qr(z)
-    xhat = q @ (q.T @ x)
-    b1 = np.linalg.solve(xhat.T @ x, xhat.T @ y)
-    e1 = y - x @ b1
+    if resid is None:
+        q, _ = np.linalg.qr(z)
+        xhat = q @ (q.T @ x)
+        resid = y - x @ np.linalg.solve(xhat.T @ x, xhat.T @ y)
+    e1 = resid
     ze = z * e1[:, None]
     if cov.kind == "homoskedastic":
         s_mat = (e1 @ e1 / n) * (z.T @ z / n)
@@ -444,6 +459,47 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec) -> float
     b2 = np.linalg.solve(g.T @ w @ g, g.T @ w @ (z.T @ y / n))
     gbar = z.T @ (y - x @ b2) / n
     return float(n * gbar @ w @ gbar)
+
+
+class Projection:
+    """The first stage of 2SLS for fixed regressors and instruments, computed once.
+
+    ``X_hat = P_Z X`` (from a QR factorisation of Z) and ``(X_hat'X_hat)^-1`` are
+    shared by every dependent variable fitted on the same design (the supply
+    relation and each candidate's restricted relation).
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        (n, k) regressors ``[exog, endog]``.
+    z : numpy.ndarray
+        (n, m) instruments ``[exog, excluded]``.
+    """
+
+    def __init__(self, x: np.ndarray, z: np.ndarray) -> None:
+        q, _ = np.linalg.qr(z)
+        self.x = x
+        self.xhat = q @ (q.T @ x)
+        self.bread = np.linalg.inv(self.xhat.T @ self.xhat)
+
+    def fit(self, y: np.ndarray, names: tuple[str, ...], cov: CovSpec, j_df: int = 0
+            ) -> IVFit:
+        """2SLS of ``y`` on the design; see :func:`fit_2sls_arrays`."""
+        x, xhat, bread = self.x, self.xhat, self.bread
+        n, k = x.shape
+        b = bread @ (xhat.T @ y)
+        e = y - x @ b
+        psi = n * (xhat * e[:, None]) @ bread
+        if cov.kind == "homoskedastic":
+            dof = n - k - cov.df_penalty
+            covm = (e @ e / dof) * bread
+        else:
+            covm = cluster_cov(psi, cov, k)
+        return IVFit(
+            names=tuple(names), params=b, cov=covm, resid=e, influence=psi, nobs=n, k=k,
+            estimator="2sls", cov_spec=cov, convention=convention_text(cov, n, k, "2sls"),
+            j_stat=None, j_p=None, j_df=j_df, kappa=1.0,
+        )
 
 
 def fit_2sls_arrays(y: np.ndarray, x: np.ndarray, z: np.ndarray, names: tuple[str, ...],
@@ -474,23 +530,7 @@ def fit_2sls_arrays(y: np.ndarray, x: np.ndarray, z: np.ndarray, names: tuple[st
     and the influence is ``psi_i = n (X_hat'X_hat)^-1 X_hat_i e_i``; the covariance is
     ``s2 (X_hat'X_hat)^-1`` (homoskedastic) or :func:`cluster_cov` of ``psi``.
     """
-    n, k = x.shape
-    q, _ = np.linalg.qr(z)
-    xhat = q @ (q.T @ x)
-    bread = np.linalg.inv(xhat.T @ xhat)
-    b = bread @ (xhat.T @ y)
-    e = y - x @ b
-    psi = n * (xhat * e[:, None]) @ bread
-    if cov.kind == "homoskedastic":
-        dof = n - k - cov.df_penalty
-        covm = (e @ e / dof) * bread
-    else:
-        covm = cluster_cov(psi, cov, k)
-    return IVFit(
-        names=tuple(names), params=b, cov=covm, resid=e, influence=psi, nobs=n, k=k,
-        estimator="2sls", cov_spec=cov, convention=convention_text(cov, n, k, "2sls"),
-        j_stat=None, j_p=None, j_df=j_df, kappa=1.0,
-    )
+    return Projection(x, z).fit(y, names, cov, j_df)
 
 
 def _enough_clusters(cov: CovSpec, moments: int) -> bool:

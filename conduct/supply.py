@@ -30,7 +30,7 @@ from conduct.design import Prepared, cluster_codes, prepare
 from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
-from conduct.iv import CovSpec, IVFit, check_design, cluster_cov, fit_iv
+from conduct.iv import CovSpec, IVFit, Projection, check_design, cluster_cov, fit_iv
 from conduct.panel import Panel
 from conduct.study import Candidate, Study
 
@@ -196,6 +196,7 @@ class SupplySystem:
     psi_demand: np.ndarray
     n_all: int
     full_cov: CovSpec
+    projection: Projection
 
     def solve(self, dependent: str, hvec: np.ndarray, *, overid: bool = False
               ) -> tuple[IVFit, np.ndarray]:
@@ -218,7 +219,8 @@ class SupplySystem:
         cols = self.prepared.columns
         fit = fit_iv(cols[dependent], self.exog, self.endog, self.instr, self.names,
                      estimator="2sls", cov=self.prepared.cov, overid=overid,
-                     instrument_names=self.instr_names, checked=True)
+                     instrument_names=self.instr_names, checked=True,
+                     projection=self.projection)
         return fit, cluster_cov(self.influence(fit, hvec), self.full_cov, fit.k)
 
     def influence(self, fit: IVFit, hvec: np.ndarray) -> np.ndarray:
@@ -379,7 +381,7 @@ def build_system(
         labels=labels, group=group, qstar=qstar, dqstar=dqstar, h=h, prepared=prep,
         exog=exog, endog=endog, instr=instr, endog_names=endog_names,
         instr_names=instr_names, a_mat=a_mat, z=z, psi_demand=demand.fit.influence,
-        n_all=n_all, full_cov=full_cov,
+        n_all=n_all, full_cov=full_cov, projection=Projection(x, z),
     )
 
 

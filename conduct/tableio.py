@@ -22,8 +22,8 @@ import pandas as pd
 from conduct.errors import DataError, suggest
 
 __all__ = [
-    "MARKET", "PERIOD", "TIME", "file_row", "file_rows", "file_sha256", "market_labels",
-    "parse_periods", "read_table", "rows_text", "to_numeric",
+    "MARKET", "PARQUET_SUFFIXES", "PERIOD", "TIME", "file_row", "file_rows", "file_sha256",
+    "market_labels", "parquet_files", "parse_periods", "read_table", "rows_text", "to_numeric",
 ]
 
 # Internal column names of assembled and validated frames.
@@ -34,6 +34,33 @@ TIME = "_t"  # integer position of the period on its own calendar (for ordering,
 _QUARTER = re.compile(r"^\s*(\d{4})\s*[-_ ]?\s*[Qq]([1-4])\s*$")
 _QUARTER_FIRST = re.compile(r"^\s*[Qq]([1-4])\s*[-_/ ]?\s*(\d{4})\s*$")  # "Q1 2016"
 _MONTH = re.compile(r"^\s*(\d{4})[-/](\d{1,2})\s*$")
+PARQUET_SUFFIXES = (".parquet", ".pq")
+
+
+def parquet_files(path: Path) -> list[Path]:
+    """The Parquet files of a dataset directory, in sorted order.
+
+    Files and folders whose names start with ``.`` or ``_`` (``_metadata``,
+    ``_SUCCESS``, checksums) are passed over, as Parquet readers do.
+
+    Parameters
+    ----------
+    path : Path
+        A directory.
+
+    Returns
+    -------
+    list of Path
+        Every ``.parquet`` or ``.pq`` file below ``path`` (empty for a plain folder).
+    """
+    out = []
+    for p in sorted(path.rglob("*")):
+        parts = p.relative_to(path).parts
+        if any(part.startswith((".", "_")) for part in parts):
+            continue
+        if p.suffix.lower() in PARQUET_SUFFIXES and p.is_file():
+            out.append(p)
+    return out
 
 
 def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
@@ -67,6 +94,14 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
         raise DataError(f"{what} {path} cannot be opened: "
                         f"{getattr(exc, 'strerror', None) or exc}.") from None
     if is_dir:
+        if parquet_files(path):
+            raise DataError(
+                f"{what} {path} is a directory of Parquet files. A Parquet dataset partitioned "
+                "by market is read part by part, for the main panel only: set partitioned = "
+                "true under [panel] and run conduct estimate (in Python, "
+                "conduct.estimate_partitioned). Other commands, and conduct.estimate, read a "
+                "single file."
+            )
         raise DataError(f"{what} {path} is a directory; give the path of a file.")
     if not exists:
         raise DataError(f"{what} {path} does not exist (paths are relative to the study file).")
@@ -301,8 +336,7 @@ def to_numeric(frame: pd.DataFrame, col: str, path: Path, file_rows: np.ndarray,
 
 def file_rows(n: int, path: Path) -> np.ndarray:
     """Row numbers in the file of data rows ``0..n-1`` (see :func:`file_row`)."""
-    suffix = path.suffix.lower()
-    return np.asarray([file_row(i, suffix) for i in range(n)], dtype=np.int64)
+    return np.arange(n, dtype=np.int64) + file_row(0, path.suffix.lower())
 
 
 def file_sha256(path: Path) -> str:

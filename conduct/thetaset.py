@@ -29,7 +29,7 @@ from scipy import optimize, stats
 
 from conduct.demand import DemandResult
 from conduct.design import cluster_codes
-from conduct.iv import CovSpec
+from conduct.iv import CovSpec, group_sums
 from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import QSTAR, SupplyResult, benchmark_h
@@ -136,9 +136,7 @@ class _Linear:
             g = int(c.max()) + 1
             sums = []
             for a in pieces:
-                out = np.zeros((g, self.kr))
-                np.add.at(out, c, a)
-                sums.append(out)
+                sums.append(group_sums(c, a) if g < n_all else a)
             self.terms.append((factor / n_all**2, sums))
         self.nuisance = bool(study.supply.cost_slope)
 

@@ -36,6 +36,7 @@ from scipy import optimize, stats
 
 from conduct.absorb import dense_codes
 from conduct.errors import EstimationError, IdentificationError
+from conduct.iv import group_sums
 
 __all__ = [
     "ARSet",
@@ -393,9 +394,7 @@ def _scores(d: _Design, resid: np.ndarray) -> np.ndarray:
     s = d.Z * resid[:, None]
     if d.cov == "cluster":
         assert d.codes is not None and d.n_clusters is not None
-        out = np.zeros((d.n_clusters, d.k))
-        np.add.at(out, d.codes, s)
-        return out
+        return group_sums(d.codes, s)
     return s
 
 

@@ -132,3 +132,19 @@ def test_liml_demand_uses_the_full_path(tmp_path) -> None:  # type: ignore[no-un
 
     panel, study = _kernel_case(tmp_path, {}, {"estimator": "liml"})
     assert replicate_kernel(panel, study) is None
+
+
+@pytest.mark.parametrize("layout", ["sorted", "shuffled", "sorted-with-gap"])
+def test_group_sums_equal_a_dense_indicator_product(layout: str) -> None:
+    from conduct.iv import group_sums
+
+    rng = np.random.default_rng(5)
+    codes = np.sort(rng.integers(0, 30, 500))
+    if layout == "shuffled":
+        codes = rng.permutation(codes)
+    if layout == "sorted-with-gap":
+        codes = np.where(codes == 7, 8, codes)  # code 7 absent: its row of sums is zero
+    a = rng.normal(size=(500, 4))
+    g = int(codes.max()) + 1
+    expected = np.eye(g)[codes].T @ a  # plain numpy: indicator matrix times the scores
+    np.testing.assert_allclose(group_sums(codes, a), expected, rtol=1e-12, atol=1e-12)
