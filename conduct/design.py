@@ -65,7 +65,8 @@ def _nested(groups: np.ndarray, clusters: np.ndarray) -> bool:
     return bool(np.all(first[groups] == clusters))
 
 
-def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand"
+def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand",
+                  known: dict[str, np.ndarray] | None = None
                   ) -> tuple[np.ndarray, np.ndarray | None]:
     """Cluster codes of the rows for each cluster dimension of the study.
 
@@ -76,6 +77,8 @@ def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand"
     study : Study
     stage : str
         For messages.
+    known : dict of str to numpy.ndarray or None
+        Codes already computed for ``market`` or ``period``, reused as they are.
 
     Returns
     -------
@@ -91,8 +94,11 @@ def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand"
     out = []
     for name in dims:
         col = {"market": MARKET, "period": TIME}.get(name, name)
-        c = codes(frame[col].astype(str).to_numpy() if col not in (MARKET, TIME)
-                  else frame[col].to_numpy())
+        if known is not None and name in known:
+            c = known[name]
+        else:
+            c = codes(frame[col].astype(str).to_numpy() if col not in (MARKET, TIME)
+                      else frame[col].to_numpy())
         if int(c.max()) + 1 < 2:
             if name == "market":
                 raise EstimationError(
@@ -157,7 +163,8 @@ def prepare(
         # absorb() with no groups demeans (the intercept); keep raw columns and add a constant
         columns = {k: np.asarray(data[k], dtype=float) for k in names}
     errors = study.demand.errors
-    c1, c2 = cluster_codes(frame, study, stage) if errors == "cluster" else (None, None)
+    c1, c2 = (cluster_codes(frame, study, stage, {"market": markets, "period": periods})
+              if errors == "cluster" else (None, None))
     penalty = absorbed.df_absorbed if groups else 0
     if errors == "cluster":
         # absorbed effects nested in a cluster dimension are not counted

@@ -42,7 +42,7 @@ import pandas as pd
 from scipy import stats
 
 from conduct.demand import DemandResult
-from conduct.design import cluster_codes, prepare
+from conduct.design import prepare
 from conduct.errors import DataError, EstimationError
 from conduct.iv import CovSpec
 from conduct.menu_stats import LackOfFit, lack_of_fit, orthonormal, pair_stats, weak_bounds
@@ -327,7 +327,8 @@ def menu_test(
         prep.constant or s.cost_shifters) else np.zeros((n, 0))
     resid = {k: _residualise(v, w) for k, v in cols.items() if k not in s.cost_shifters}
     k_small = w.shape[1] + (1 if s.cost_slope else 0)
-    c1, c2 = cluster_codes(f, study) if prep.cov.kind == "cluster" else (None, None)
+    c1, c2 = ((supply.full_cov.clusters, supply.full_cov.clusters2)
+              if prep.cov.kind == "cluster" else (None, None))
     cov = CovSpec(kind=prep.cov.kind, clusters=c1, hac_lags=prep.cov.hac_lags,
                   df_penalty=prep.cov.df_penalty, clusters2=c2)
     psi_d = demand.fit.influence

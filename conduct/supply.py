@@ -26,7 +26,7 @@ import pandas as pd
 from scipy import stats
 
 from conduct.demand import DemandResult
-from conduct.design import Prepared, cluster_codes, prepare
+from conduct.design import Prepared, prepare
 from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
@@ -373,7 +373,9 @@ def build_system(
     w = np.linalg.inv(z.T @ z / n)
     a_mat = np.linalg.solve(gmat.T @ w @ gmat, gmat.T @ w)
     cov_full = prep.cov
-    c1, c2 = cluster_codes(f, study) if cov_full.kind == "cluster" else (None, None)
+    # demand used every panel row: its cluster codes are the full panel's
+    c1, c2 = ((demand.prepared.cov.clusters, demand.prepared.cov.clusters2)
+              if cov_full.kind == "cluster" else (None, None))
     full_cov = CovSpec(kind=cov_full.kind, clusters=c1, hac_lags=cov_full.hac_lags,
                        df_penalty=cov_full.df_penalty, clusters2=c2)
     return SupplySystem(

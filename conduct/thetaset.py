@@ -28,7 +28,6 @@ import numpy as np
 from scipy import optimize, stats
 
 from conduct.demand import DemandResult
-from conduct.design import cluster_codes
 from conduct.iv import CovSpec, group_sums
 from conduct.panel import Panel
 from conduct.study import Study
@@ -78,11 +77,11 @@ class ThetaSet:
         return f"The Anderson-Rubin set is {parts}."
 
 
-class _Linear:
-    """Reduced-form coefficients and cluster sums, linear in (theta0, c)."""
+class _Shared:
+    """The parts of :class:`_Linear` that do not depend on the candidate's markup."""
 
     def __init__(self, panel: Panel, study: Study, demand: DemandResult,
-                 supply: SupplyResult, markup: tuple[str, np.ndarray] | None = None) -> None:
+                 supply: SupplyResult) -> None:
         assert study.supply is not None
         prep = supply.prepared
         cols = prep.columns
@@ -92,53 +91,68 @@ class _Linear:
         exog = ([np.ones(n)] if prep.constant else []) + [cols[c]
                                                          for c in study.supply.cost_shifters]
         z = np.column_stack([cols[c] for c in supply.instruments])
-        r = np.column_stack([*exog, z])
+        self.r = np.column_stack([*exog, z])
         self.kz = z.shape[1]
-        self.kr = r.shape[1]
-        rtr_inv = np.linalg.inv(r.T @ r / n)
-        m = rtr_inv @ r.T / n  # (kr, n): coefficient map
+        self.kr = self.r.shape[1]
+        self.rtr_inv = np.linalg.inv(self.r.T @ self.r / n)
         q = panel.frame[study.panel.quantity].to_numpy(dtype=float)[rows]
         slope = demand.slope[rows]
-        dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]
-        if markup is None:
-            ys = [cols["_p"], -cols[QSTAR], -cols["Q"]]  # y = P + theta0 (-Q*) + c (-Q)
-        else:
-            # a candidate's markup h Q* (absorbed as P - h Q*); theta0 = 1 is the candidate
-            name, h = markup
-            ys = [cols["_p"], cols[f"_dep:{name}"] - cols["_p"], -cols["Q"]]
-            dqstar = h[rows][:, None] * dqstar
-        self.pi = [m @ y for y in ys]
-        resid = [y - r @ p for y, p in zip(ys, self.pi, strict=True)]
-        g_alpha = -(rtr_inv @ (r.T @ dqstar) / n)  # d pi / d alpha per unit theta0
-        psi_d = demand.fit.influence
-        c1, c2 = (cluster_codes(panel.frame, study) if prep.cov.kind == "cluster"
-                  else (None, None))
+        self.dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]
+        c1, c2 = ((supply.full_cov.clusters, supply.full_cov.clusters2)
+                  if prep.cov.kind == "cluster" else (None, None))
         self.cov = CovSpec(kind=prep.cov.kind, clusters=c1, hac_lags=prep.cov.hac_lags,
                            df_penalty=prep.cov.df_penalty, clusters2=c2)
-        self.n_all = n_all
-        # full-sample influence pieces: psi = A0 + theta0 A1 + c A2
-        pieces = []
-        for j, e in enumerate(resid):
-            a = np.zeros((n_all, self.kr))
-            a[rows] = (n_all / n) * (r * e[:, None]) @ rtr_inv
-            if j == 1:
-                a += psi_d @ g_alpha.T
-            pieces.append(a)
+        self.n_all, self.rows, self.n = n_all, rows, n
+        self.psi_d = demand.fit.influence
         dof = n_all - self.kr - self.cov.df_penalty
         # each clustering (or the observations themselves) with its signed factor
         if self.cov.kind == "cluster":
-            terms = [(c, sign * (int(c.max()) + 1) / int(c.max()) * (n_all - 1) / dof)
-                     for c, sign in self.cov.cluster_terms()]
+            self.terms = [(c, sign * (int(c.max()) + 1) / int(c.max()) * (n_all - 1) / dof)
+                          for c, sign in self.cov.cluster_terms()]
         else:  # robust and homoskedastic treated as robust; HAC treated as robust
-            terms = [(np.arange(n_all), n_all / dof)]
-        self.terms = []
-        for c, factor in terms:
-            g = int(c.max()) + 1
-            sums = []
-            for a in pieces:
-                sums.append(group_sums(c, a) if g < n_all else a)
-            self.terms.append((factor / n_all**2, sums))
+            self.terms = [(np.arange(n_all), n_all / dof)]
+        # price and -Q enter every candidate's statistic the same way
+        self.common = {key: self.reduced(y) for key, y in (("p", cols["_p"]),
+                                                           ("q", -cols["Q"]))}
+        self.qstar_column, self.common_p_column = cols[QSTAR], cols["_p"]
         self.nuisance = bool(study.supply.cost_slope)
+
+    def reduced(self, y: np.ndarray, extra: np.ndarray | None = None
+                ) -> tuple[np.ndarray, list[np.ndarray]]:
+        """Reduced-form coefficients of ``y`` and their cluster sums per term.
+
+        ``extra`` (n_all, kr) is added to the influence (the generated-regressor part).
+        """
+        pi = self.rtr_inv @ (self.r.T @ y) / self.n
+        e = y - self.r @ pi
+        a = np.zeros((self.n_all, self.kr))
+        a[self.rows] = (self.n_all / self.n) * (self.r * e[:, None]) @ self.rtr_inv
+        if extra is not None:
+            a += extra
+        return pi, [group_sums(c, a) if int(c.max()) + 1 < self.n_all else a
+                    for c, _ in self.terms]
+
+
+class _Linear:
+    """Reduced-form coefficients and cluster sums, linear in (theta0, c)."""
+
+    def __init__(self, shared: _Shared, markup: tuple[np.ndarray, np.ndarray] | None = None
+                 ) -> None:
+        sh = shared
+        cols_qstar = sh.qstar_column
+        if markup is None:
+            y1, dqstar = -cols_qstar, sh.dqstar  # y = P + theta0 (-Q*) + c (-Q)
+        else:
+            # a candidate's markup h Q* (absorbed as P - h Q*); theta0 = 1 is the candidate
+            dep, h = markup
+            y1, dqstar = dep - sh.common_p_column, h[sh.rows][:, None] * sh.dqstar
+        g_alpha = -(sh.rtr_inv @ (sh.r.T @ dqstar) / sh.n)  # d pi / d alpha per unit theta0
+        pi1, sums1 = sh.reduced(y1, sh.psi_d @ g_alpha.T)
+        (pi0, sums0), (pi2, sums2) = sh.common["p"], sh.common["q"]
+        self.pi = [pi0, pi1, pi2]
+        self.kz, self.kr, self.nuisance = sh.kz, sh.kr, sh.nuisance
+        self.terms = [(factor / sh.n_all**2, [s0, s1, s2]) for (_, factor), s0, s1, s2
+                      in zip(sh.terms, sums0, sums1, sums2, strict=True)]
 
     def stat(self, theta0: float, c: float) -> float:
         pi = self.pi[0] + theta0 * self.pi[1] + c * self.pi[2]
@@ -172,7 +186,7 @@ def theta_ar_set(panel: Panel, study: Study, demand: DemandResult, supply: Suppl
     -------
     ThetaSet
     """
-    lin = _Linear(panel, study, demand, supply)
+    lin = _Linear(_Shared(panel, study, demand, supply))
     level = study.inference.level
     df = lin.kz - (1 if lin.nuisance else 0)
     crit = float(stats.chi2.ppf(level, df))
@@ -227,11 +241,13 @@ def candidate_ar_tests(panel: Panel, study: Study, demand: DemandResult,
     h_all = benchmark_h(panel, study)
     out: dict[str, tuple[float, int, float]] = {}
     n = len(panel.frame)
+    shared: _Shared | None = None
     for c in study.candidates:
         h = np.full(n, c.theta) if c.theta is not None else h_all
         if h is None or f"_dep:{c.name}" not in supply.prepared.columns:
             continue
-        lin = _Linear(panel, study, demand, supply, markup=(c.name, h))
+        shared = shared or _Shared(panel, study, demand, supply)
+        lin = _Linear(shared, markup=(supply.prepared.columns[f"_dep:{c.name}"], h))
         df = lin.kz - (1 if lin.nuisance else 0)
         stat = lin.profile(1.0)
         out[c.name] = (stat, df, float(stats.chi2.sf(stat, df)))

@@ -9,7 +9,7 @@ from scipy import stats
 import conduct
 from conduct.presets import write_study
 from conduct.simulate import SimulationSpec
-from conduct.thetaset import _Linear
+from conduct.thetaset import _Linear, _Shared
 
 
 @pytest.fixture(scope="module")
@@ -23,7 +23,7 @@ def test_set_contains_estimate_and_endpoints_sit_on_the_critical_value(res):
     assert ts is not None and ts.kind == "bounded"
     (lo, hi), = ts.intervals
     assert lo < res.supply.theta < hi
-    lin = _Linear(res.panel, res.study, res.demand, res.supply)
+    lin = _Linear(_Shared(res.panel, res.study, res.demand, res.supply))
     crit = stats.chi2.ppf(ts.level, ts.df)
     for end in (lo, hi):
         assert lin.profile(end) == pytest.approx(crit, rel=1e-6)
@@ -32,7 +32,7 @@ def test_set_contains_estimate_and_endpoints_sit_on_the_critical_value(res):
 
 
 def test_candidate_ar_equals_set_statistic_at_fixed_theta(res):
-    lin = _Linear(res.panel, res.study, res.demand, res.supply)
+    lin = _Linear(_Shared(res.panel, res.study, res.demand, res.supply))
     for name, theta in (("competitive", 0.0), ("collusive", 1.0)):
         stat, df, p = res.candidate_ar[name]
         assert stat == pytest.approx(lin.profile(theta), rel=1e-9)
