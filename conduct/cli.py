@@ -34,14 +34,23 @@ def _paragraph(prefix: str, message: str) -> str:
 def _cmd_check(args: argparse.Namespace) -> int:
     from conduct.identify import check_identification
     from conduct.panel import describe_assembly, load_panel, write_panel
+    from conduct.partitioned import check_partitioned
     from conduct.study import load_study
 
     study = load_study(args.study)
-    panel = load_panel(study)
+    if study.panel.partitioned:
+        if args.write_panel is not None:
+            raise ConductError(f"--write-panel writes the panel from memory, which a "
+                               f"partitioned study ({study.path}) never holds; leave it out.")
+        head, panel = [("data", check_partitioned(study))], None
+    else:
+        panel = load_panel(study)
+        head = [("data", f"{study.panel.file} (sha256 {panel.description.sha256[:12]})"),
+                ("panel", panel.description.text())]
     print(f"study     {study.path}")
     print(f"title     {study.title}")
-    print(f"data      {study.panel.file} (sha256 {panel.description.sha256[:12]})")
-    print("panel     " + panel.description.text().replace("\n", "\n          "))
+    for label, text in head:
+        print(f"{label:<10}" + text.replace("\n", "\n          "))
     d = study.demand
     print(f"demand    {d.form}, {d.estimator}, errors {d.errors}, effects "
           f"{', '.join(d.effects) or 'none'}")
@@ -56,9 +65,10 @@ def _cmd_check(args: argparse.Namespace) -> int:
               f"{'may rise with output' if s.cost_slope else 'constant in output'}")
         print(f"conduct   {ident.reason}")
         print(f"models    {', '.join(c.name for c in study.candidates)}")
-    print(describe_assembly(panel))
-    if args.write_panel is not None:
-        print(f"wrote     {write_panel(panel, args.write_panel)} (the assembled panel)")
+    if panel is not None:
+        print(describe_assembly(panel))
+        if args.write_panel is not None:
+            print(f"wrote     {write_panel(panel, args.write_panel)} (the assembled panel)")
     for w in ident.warnings:
         print(_paragraph("warning: ", w), file=sys.stderr)
     print("check     passed: nothing was estimated")
@@ -130,6 +140,8 @@ def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
             f"--alert break needs the break test: set break_test = true under [supply] in "
             f"{study.path}."
         )
+    if study.panel.partitioned:
+        return _estimate_partitioned(args, study, argv)
     res = estimate(study, quiet=args.quiet or args.json, workers=args.workers,
                    scheduler=args.scheduler)
     folder, summary = write_run(res, label=args.label, argv=["conduct", *argv], alerts=specs)
@@ -142,6 +154,28 @@ def _cmd_estimate(args: argparse.Namespace, argv: Sequence[str]) -> int:
             for line in summary["alerts"]:
                 print(line, file=sys.stderr)
         return EXIT_ALERT
+    return EXIT_OK
+
+
+def _estimate_partitioned(args: argparse.Namespace, study: Any, argv: Sequence[str]) -> int:
+    from conduct.partitioned import estimate_partitioned
+    from conduct.partitioned_result import write_result
+
+    for flag, value, why in (("--alert", args.alert, "compares run folders, which a "
+                              "partitioned study does not write"),
+                             ("--workers", args.workers, "runs bootstrap replicates, which a "
+                              "partitioned study skips; --scheduler ADDRESS reads the parts "
+                              "on a Dask cluster")):
+        if value:
+            raise ConductError(f"{flag} {why}; leave it out for {study.path} "
+                               "(partitioned = true).")
+    res = estimate_partitioned(study, scheduler=args.scheduler)
+    path, doc = write_result(res, label=args.label, argv=["conduct", *argv])
+    if args.json:
+        print(json.dumps(doc, indent=2, sort_keys=True))
+    elif not args.quiet:
+        print(res.summary())
+        print(f"written     {path}")
     return EXIT_OK
 
 

@@ -68,6 +68,9 @@ class PanelSpec:
     delimiter, decimal, thousands : str or None
         How the main CSV file writes fields and numbers (e.g. ``";"``, ``","``, ``"."``
         for files written with European conventions); None is the plain reading.
+    partitioned : bool
+        ``file`` is a directory holding a Parquet dataset partitioned by market, estimated
+        part by part (:mod:`conduct.partitioned`) instead of loaded whole.
     """
 
     file: Path
@@ -82,6 +85,7 @@ class PanelSpec:
     delimiter: str | None = None
     decimal: str | None = None
     thousands: str | None = None
+    partitioned: bool = False
 
     def csv_options(self) -> dict[str, str]:
         """Keyword arguments for reading the main CSV file."""
@@ -258,11 +262,14 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
     r = TableReader(t, "panel", file)
     raw_file = r.get("file", r.string)
     path = resolve_path(file.parent, raw_file, "panel.file")
-    if path.suffix.lower() not in DATA_SUFFIXES:
+    partitioned = r.get("partitioned", r.boolean, False)
+    if not partitioned and path.suffix.lower() not in DATA_SUFFIXES:
+        folder = (" It is a directory: for a Parquet dataset partitioned by market, set "
+                  "partitioned = true under [panel]." if _is_dir(path) else "")
         raise r.fail(
             "file",
             f"names '{raw_file}', whose type '{path.suffix or '(none)'}' is not read; "
-            f"use one of {', '.join(DATA_SUFFIXES)}.",
+            f"use one of {', '.join(DATA_SUFFIXES)}.{folder}",
         )
     spec = PanelSpec(
         file=path,
@@ -277,6 +284,7 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
         delimiter=r.get("delimiter", _one_char(r), None),
         decimal=r.get("decimal", _one_char(r), None),
         thousands=r.get("thousands", _one_char(r), None),
+        partitioned=partitioned,
     )
     r.finish()
     if spec.decimal is not None and spec.decimal == spec.thousands:
@@ -301,6 +309,13 @@ def _panel(t: dict[str, Any], file: Path) -> PanelSpec:
             )
         seen[col] = role
     return spec
+
+
+def _is_dir(path: Path) -> bool:
+    try:
+        return path.is_dir()
+    except (OSError, ValueError):  # a name too long for the system, say
+        return False
 
 
 def _one_char(r: TableReader) -> Callable[[Any, str], str]:

@@ -13,8 +13,9 @@ PACKAGE = Path(__file__).resolve().parent.parent / "conduct"
 
 ORDER = [
     "errors", "progress", "executor", "schema", "study_data", "study", "tableio",
-    "derive_ops", "firms", "coverage", "assemble", "panel", "absorb", "iv", "weakiv",
-    "stockyogo", "diagnostics", "design", "demand", "identify", "supply", "menu_stats",
+    "derive_ops", "firms", "coverage", "assemble", "panel", "parquet_dataset", "absorb", "iv",
+    "crossprod", "weakiv", "stockyogo", "diagnostics", "design", "demand", "identify", "supply",
+    "partitioned_result", "partitioned", "menu_stats",
     "menu", "thetaset", "regimes", "breaks", "bootstrap", "derived", "pipeline", "power_sim",
     "power_result", "power", "summary", "alerts", "figures", "tables", "report", "runs", "compare",
     "simulate", "layouts", "presets", "cli", "__init__",
