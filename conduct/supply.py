@@ -242,9 +242,11 @@ class SupplySystem:
         deltas = fit.params[list(self.theta_index)][self.group]
         n = len(self.rows)
         g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
-        psi = np.zeros((self.n_all, fit.k))
-        psi[self.rows] += (self.n_all / n) * fit.influence
-        psi += self.psi_demand @ (self.a_mat @ g_alpha).T
+        psi = self.psi_demand @ (self.a_mat @ g_alpha).T
+        if n == self.n_all:  # every row used (rows are then 0..n-1 in order)
+            psi += fit.influence
+        else:
+            psi[self.rows] += (self.n_all / n) * fit.influence
         return psi
 
 

@@ -14,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import re
 import unicodedata
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -224,6 +225,12 @@ def rows_text(rows: np.ndarray, limit: int = 5) -> str:
     return f"row{'s' if len(rows) > 1 else ''} {shown}{more}"
 
 
+def _labels(positions: np.ndarray, text: Callable[[int], str]) -> np.ndarray:
+    """Label of each row's calendar position, formatting each distinct position once."""
+    inverse, uniq = pd.factorize(positions)
+    return np.asarray([text(int(v)) for v in uniq], dtype=object)[inverse]
+
+
 def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray,
                   what: str = "Data file") -> tuple[np.ndarray, np.ndarray, str]:
     """Return (labels, integer calendar positions, kind) for a period column.
@@ -250,11 +257,11 @@ def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray
                 "2019Q3."
             )
         ints = arr.astype(np.int64)
-        return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
+        return _labels(ints, str), ints, "integer"
     text = values.astype(str).str.strip()
     if text.str.fullmatch(r"-?\d+").all():  # integers stored as text
         ints = text.astype(np.int64).to_numpy()
-        return np.asarray([str(v) for v in ints], dtype=object), ints, "integer"
+        return _labels(ints, str), ints, "integer"
     q = text.str.extract(_QUARTER)
     if not q.notna().all().all():
         first = text.str.extract(_QUARTER_FIRST)
@@ -262,15 +269,14 @@ def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray
             q = first[[1, 0]].set_axis([0, 1], axis=1)
     if q.notna().all().all():
         years, qs = q[0].astype(int).to_numpy(), q[1].astype(int).to_numpy()
-        labels = np.asarray([f"{y}Q{k}" for y, k in zip(years, qs, strict=True)], dtype=object)
-        return labels, years * 4 + (qs - 1), "quarter"
+        pos = years * 4 + (qs - 1)
+        return _labels(pos, lambda v: f"{v // 4}Q{v % 4 + 1}"), pos, "quarter"
     m = text.str.extract(_MONTH)
     if m.notna().all().all():
         years, ms = m[0].astype(int).to_numpy(), m[1].astype(int).to_numpy()
         if ((ms >= 1) & (ms <= 12)).all():
-            labels = np.asarray([f"{y}-{k:02d}" for y, k in zip(years, ms, strict=True)],
-                                dtype=object)
-            return labels, years * 12 + (ms - 1), "month"
+            pos = years * 12 + (ms - 1)
+            return _labels(pos, lambda v: f"{v // 12}-{v % 12 + 1:02d}"), pos, "month"
     try:
         stamps = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601"))
     except (ValueError, TypeError):

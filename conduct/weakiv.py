@@ -694,7 +694,10 @@ def effective_f(
     fitted = d.Z @ coef
     resid = x - fitted
     omega = _meat(d, resid)
-    L = np.linalg.cholesky(d.Z.T @ d.Z)
+    # the Cholesky factor of Z'Z from a QR of Z: stable when the instruments are nearly
+    # collinear, where forming Z'Z first loses half the digits
+    r = np.linalg.qr(d.Z, mode="r")
+    L = (r * np.where(np.diag(r) < 0, -1.0, 1.0)[:, None]).T
     S = sla.solve_triangular(L, sla.solve_triangular(L, omega, lower=True).T, lower=True)
     S = (S + S.T) / 2
     eig = np.linalg.eigvalsh(S)

@@ -148,3 +148,16 @@ def test_group_sums_equal_a_dense_indicator_product(layout: str) -> None:
     g = int(codes.max()) + 1
     expected = np.eye(g)[codes].T @ a  # plain numpy: indicator matrix times the scores
     np.testing.assert_allclose(group_sums(codes, a), expected, rtol=1e-12, atol=1e-12)
+
+
+def test_two_way_absorption_grid_order_equals_shuffled_rows() -> None:
+    rng = np.random.default_rng(8)
+    g1, g2 = np.repeat(np.arange(9), 6), np.tile(np.arange(6), 9)  # panel order: grid path
+    x = rng.normal(size=(54, 3)) * [1.0, 1e3, 1e-3]
+    perm = rng.permutation(54)  # same panel, rows shuffled: counting path
+    grid, shuffled = absorb(x, [g1, g2]), absorb(x[perm], [g1[perm], g2[perm]])
+    assert grid.method == shuffled.method == "two-way exact"
+    np.testing.assert_allclose(grid.values[perm], shuffled.values, rtol=1e-12, atol=1e-15)
+    d = np.column_stack([np.eye(9)[g1], np.eye(6)[g2][:, 1:]])  # numpy lstsq on dummies
+    resid = x - d @ np.linalg.lstsq(d, x, rcond=None)[0]
+    np.testing.assert_allclose(grid.values, resid, rtol=1e-10, atol=1e-12)
