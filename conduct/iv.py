@@ -191,6 +191,19 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
     return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
 
 
+def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """``target[rows] += values`` in place, without fancy indexing when ``rows`` is every row.
+
+    ``rows`` are increasing positions (from ``np.flatnonzero``), so as many rows as
+    ``target`` has means ``0..n-1`` in order.  Returns ``target``.
+    """
+    if len(rows) == len(target):
+        target += values
+    else:
+        target[rows] += values
+    return target
+
+
 def group_sums(codes: np.ndarray, a: np.ndarray) -> np.ndarray:
     """Column sums of ``a`` (n, p) within each code 0..G-1, as a (G, p) array."""
     g = int(codes.max()) + 1

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from conduct.errors import EstimationError
-from conduct.iv import CovSpec, cluster_cov
+from conduct.iv import CovSpec, add_rows, cluster_cov
 
 __all__ = [
     "CRITICAL_VALUES",
@@ -182,9 +182,8 @@ def lack_of_fit(
     a = z @ g
     big_g = -(z.T @ dmarkup) / n  # (d, k_d)
     psi = 2.0 * (psi_demand @ (big_g.T @ g))
-    psi[rows] += (n_all / n) * (2.0 * a * e - a * a - q)
-    mom = psi_demand @ big_g.T
-    mom[rows] += (n_all / n) * (z * e[:, None] - g)
+    add_rows(psi, rows, (n_all / n) * (2.0 * a * e - a * a - q))
+    mom = add_rows(psi_demand @ big_g.T, rows, (n_all / n) * (z * e[:, None] - g))
     return LackOfFit(q=q, g=g, psi=psi, moment_psi=mom)
 
 

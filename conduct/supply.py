@@ -30,7 +30,7 @@ from conduct.design import Prepared, prepare
 from conduct.diagnostics import FirstStage, Strength, first_stage_table, stage_strength
 from conduct.errors import DataError
 from conduct.identify import supply_instruments
-from conduct.iv import CovSpec, IVFit, Projection, check_design, cluster_cov, fit_iv
+from conduct.iv import CovSpec, IVFit, Projection, add_rows, check_design, cluster_cov, fit_iv
 from conduct.panel import Panel
 from conduct.study import Candidate, Study
 
@@ -243,11 +243,7 @@ class SupplySystem:
         n = len(self.rows)
         g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
         psi = self.psi_demand @ (self.a_mat @ g_alpha).T
-        if n == self.n_all:  # every row used (rows are then 0..n-1 in order)
-            psi += fit.influence
-        else:
-            psi[self.rows] += (self.n_all / n) * fit.influence
-        return psi
+        return add_rows(psi, self.rows, (self.n_all / n) * fit.influence)
 
 
 def supply_columns(frame: pd.DataFrame, study: Study

@@ -28,7 +28,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from conduct.demand import DemandResult
-from conduct.iv import CovSpec, group_sums
+from conduct.iv import CovSpec, add_rows, group_sums
 from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import QSTAR, SupplyResult, benchmark_h
@@ -125,10 +125,8 @@ class _Shared:
         """
         pi = self.rtr_inv @ (self.r.T @ y) / self.n
         e = y - self.r @ pi
-        a = np.zeros((self.n_all, self.kr))
-        a[self.rows] = (self.n_all / self.n) * (self.r * e[:, None]) @ self.rtr_inv
-        if extra is not None:
-            a += extra
+        a = extra.copy() if extra is not None else np.zeros((self.n_all, self.kr))
+        add_rows(a, self.rows, (self.n_all / self.n) * (self.r * e[:, None]) @ self.rtr_inv)
         return pi, [group_sums(c, a) if int(c.max()) + 1 < self.n_all else a
                     for c, _ in self.terms]
 

@@ -319,9 +319,11 @@ def _residualise(W: np.ndarray, *arrays: np.ndarray) -> tuple[int, list[np.ndarr
     """Return rank(W) and each array minus its projection on W."""
     if W.shape[1] == 0:
         return 0, [a.copy() for a in arrays]
-    U, s, _ = np.linalg.svd(W, full_matrices=False)
+    # singular vectors of W from those of its QR factor R (k x k): same s, O(n k^2)
+    q, r = np.linalg.qr(W)
+    u_r, s, _ = np.linalg.svd(r)
     tol = s.max() * max(W.shape) * np.finfo(float).eps if s.size else 0.0
-    U = U[:, s > tol]
+    U = q @ u_r[:, s > tol]
     return U.shape[1], [a - U @ (U.T @ a) for a in arrays]
 
 

@@ -161,3 +161,15 @@ def test_two_way_absorption_grid_order_equals_shuffled_rows() -> None:
     d = np.column_stack([np.eye(9)[g1], np.eye(6)[g2][:, 1:]])  # numpy lstsq on dummies
     resid = x - d @ np.linalg.lstsq(d, x, rcond=None)[0]
     np.testing.assert_allclose(grid.values, resid, rtol=1e-10, atol=1e-12)
+
+
+def test_add_rows_equals_fancy_indexing() -> None:
+    from conduct.iv import add_rows
+
+    rng = np.random.default_rng(9)
+    vals = rng.normal(size=(6, 2))
+    for rows in (np.arange(6), np.array([0, 2, 5])):
+        target = rng.normal(size=(6, 2))
+        expected = target.copy()
+        expected[rows] += vals[: len(rows)]
+        np.testing.assert_array_equal(add_rows(target, rows, vals[: len(rows)]), expected)
