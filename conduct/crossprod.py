@@ -46,8 +46,9 @@ class Moments:
     cross : numpy.ndarray
         (k, k) cross-products of the columns after removing market means (raw
         columns without market effects).
-    sums, squares : numpy.ndarray
-        (k,) raw column sums and sums of squares (for the no-variation check).
+    mean, m2 : numpy.ndarray
+        (k,) raw column means and sums of squared deviations from them (for the
+        no-variation check; parts are combined as Chan, Golub & LeVeque 1979 do).
     labels : numpy.ndarray
         (T,) period labels, sorted.
     tkey : numpy.ndarray
@@ -68,8 +69,8 @@ class Moments:
     n: int
     markets: int
     cross: np.ndarray
-    sums: np.ndarray
-    squares: np.ndarray
+    mean: np.ndarray
+    m2: np.ndarray
     labels: np.ndarray
     tkey: np.ndarray
     counts: np.ndarray
@@ -116,9 +117,10 @@ def moments(a: np.ndarray, markets: np.ndarray, periods: np.ndarray, tkey: np.nd
     if market_fe and period_fe:
         c = sparse.csr_matrix((np.ones(len(a)), (markets, codes)), shape=(g, t))
         n_m = np.bincount(markets, minlength=g).astype(float)
-        pcross = (c.T @ sparse.diags(1.0 / n_m) @ c).toarray()
-    return Moments(n=len(a), markets=g, cross=at.T @ at, sums=a.sum(axis=0),
-                   squares=(a * a).sum(axis=0), labels=labels, tkey=keys, counts=counts,
+        pcross = (c.T @ sparse.diags(1.0 / n_m) @ c).toarray() if g else np.zeros((t, t))
+    mean = a.mean(axis=0) if len(a) else np.zeros(k)
+    return Moments(n=len(a), markets=g, cross=at.T @ at, mean=mean,
+                   m2=((a - mean) ** 2).sum(axis=0), labels=labels, tkey=keys, counts=counts,
                    psums=psums, pcross=pcross, scalars=dict(scalars or {}))
 
 
@@ -146,9 +148,13 @@ def merge(a: Moments, b: Moments) -> Moments:
             scalars[key] = min(scalars[key], v)
         else:
             scalars[key] += v
-    return Moments(n=a.n + b.n, markets=a.markets + b.markets, cross=a.cross + b.cross,
-                   sums=a.sums + b.sums, squares=a.squares + b.squares, labels=labels,
-                   tkey=keys, counts=counts, psums=psums, pcross=pcross, scalars=scalars)
+    n = a.n + b.n
+    delta = b.mean - a.mean
+    mean = a.mean + delta * (b.n / n) if n else a.mean
+    m2 = a.m2 + b.m2 + (delta**2 * (a.n * b.n / n) if n else 0.0)
+    return Moments(n=n, markets=a.markets + b.markets, cross=a.cross + b.cross, mean=mean,
+                   m2=m2, labels=labels, tkey=keys, counts=counts, psums=psums,
+                   pcross=pcross, scalars=scalars)
 
 
 def merge_all(items: list[Moments]) -> Moments:
@@ -256,7 +262,7 @@ def check_design(p: Partialled, m: Moments, names: tuple[str, ...], x: list[int]
     EstimationError
     """
     n = max(m.n, 1)
-    raw = np.maximum(m.squares / n - (m.sums / n) ** 2, 0.0)
+    raw = m.m2 / n
     left = np.clip(np.diag(p.gram), 0.0, None) / n
     for what, idx in (("regressors", x), ("instruments", z)):
         for i in idx:

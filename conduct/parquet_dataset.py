@@ -17,7 +17,7 @@ partition per group of markets.  Nothing here holds more than one group's rows.
 from __future__ import annotations
 
 import re
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -308,6 +308,24 @@ def meta_frame(study: Study) -> pd.DataFrame:
     return pd.DataFrame(cols)
 
 
+def _by_value(values: pd.Series, parse: Callable[[pd.Series, np.ndarray], Any],
+              rows: np.ndarray) -> tuple[Any, np.ndarray]:
+    """``parse`` run on the distinct values only (a file repeats its periods and market).
+
+    Returns what ``parse`` returns for the distinct values and each row's position
+    among them.  When the distinct values fail, ``parse`` runs again on every row so
+    that the message names every row, as the in-memory path does.
+    """
+    inv, uniq = pd.factorize(values.to_numpy(), use_na_sentinel=False)
+    first = np.zeros(len(uniq), dtype=np.int64)
+    first[inv[::-1]] = np.arange(len(inv))[::-1]
+    try:
+        return parse(pd.Series(uniq, name=values.name), rows[first]), inv
+    except DataError:
+        parse(values.reset_index(drop=True), rows)
+        raise
+
+
 def _read_file(pf: PartFile, study: Study) -> pd.DataFrame:
     spec = study.panel
     path = Path(pf.path)
@@ -343,11 +361,13 @@ def _read_file(pf: PartFile, study: Study) -> pd.DataFrame:
     out[TIME] = np.zeros(n, dtype=np.int64)
     kind = 0
     if len(kept):
-        labels, t, kind_name = parse_periods(kept[spec.period], spec.period, path, rows[keep])
+        (labels, t, kind_name), inv = _by_value(
+            kept[spec.period], lambda v, r: parse_periods(v, spec.period, path, r), rows[keep])
         kind = KINDS.index(kind_name)
-        out.loc[keep, MARKET] = market_labels(kept[spec.market], rows[keep])
-        out.loc[keep, PERIOD] = labels
-        out.loc[keep, TIME] = t
+        markets, inv_m = _by_value(kept[spec.market], market_labels, rows[keep])
+        out.loc[keep, MARKET] = markets[inv_m]
+        out.loc[keep, PERIOD] = labels[inv]
+        out.loc[keep, TIME] = t[inv]
         _check_values(kept, replace(study, panel=replace(spec, file=path)), rows[keep],
                       _NO_ORIGIN)
     out[KIND] = np.full(n, kind, dtype=np.int8)

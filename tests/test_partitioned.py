@@ -422,3 +422,37 @@ def test_unsupported_options_are_named(small: Written, edit: Callable[[str], str
         estimate_partitioned(small.parted)
     assert needle in str(err.value) and "does not support" in str(err.value)
     assert isinstance(err.value, ConductError)
+
+
+# ----------------------------------------------------------------------------------------
+# The algebra on its own
+# ----------------------------------------------------------------------------------------
+
+def test_moments_of_parts_add_up_and_partial_out_two_way_effects() -> None:
+    """Parts (one of them empty) add up to the whole, and partialling the period dummies
+    out of the sums equals the two-way within transformation row by row."""
+    from conduct.absorb import absorb, dense_codes
+    from conduct.crossprod import merge_all, moments, partial
+
+    rng = np.random.default_rng(4)
+    market = np.repeat(np.arange(9), 7)
+    period = np.tile(np.arange(7), 9)
+    keep = rng.random(market.size) > 0.25  # unbalanced
+    market, period = market[keep], period[keep]
+    a = rng.normal(size=(market.size, 3)) + market[:, None] * 0.3 + period[:, None] ** 2
+    labels = np.asarray([f"p{t}" for t in period], dtype=object)
+
+    def part(rows: np.ndarray) -> object:
+        return moments(a[rows], dense_codes(market[rows]), labels[rows], period[rows],
+                       market_fe=True, period_fe=True)
+
+    whole = part(np.ones(market.size, dtype=bool))
+    summed = merge_all([part(market < 3), part(market > 99), part(market >= 3)])
+    for field in ("cross", "psums", "pcross", "counts", "mean", "m2"):
+        np.testing.assert_allclose(getattr(summed, field), getattr(whole, field),
+                                   rtol=1e-12, atol=1e-9, err_msg=field)
+    assert (summed.n, summed.markets) == (whole.n, whole.markets) == (market.size, 9)
+    within = absorb(a, [dense_codes(market), period]).values
+    p = partial(summed, market_fe=True, period_fe=True)
+    np.testing.assert_allclose(p.gram, within.T @ within, rtol=1e-9)
+    assert p.df_absorbed == 9 + 7 - 1
