@@ -113,6 +113,11 @@ def _is_dir(path: Path) -> tuple[bool, bool]:
                         f"{getattr(exc, 'strerror', None) or exc}.") from None
 
 
+def _unreadable(path: Path, exc: Exception) -> DataError:
+    return DataError(f"Data file {path} could not be read as Parquet: "
+                     f"{str(exc).rstrip('.')}.")
+
+
 def _key_label(value: str) -> str:
     """A folder value as a market label: ``3.0`` is ``3``, as for a float column."""
     text = value.strip()
@@ -157,12 +162,13 @@ def _file_markets(path: Path, meta: Any, market: str) -> tuple[str, ...]:
     return tuple(sorted(set(market_labels(col.drop_duplicates().reset_index(drop=True)))))
 
 
-def _footer(path: Path, keys: dict[str, str | None], study: Study) -> tuple[int, list[str]]:
+def _footer(path: Path, keys: dict[str, str | None], study: Study) -> Any:
+    """The file's Parquet metadata, after checking it has every column the study reads."""
     try:
         meta = pq.read_metadata(path)
         names = list(meta.schema.to_arrow_schema().names)
     except Exception as exc:  # pyarrow's many reader errors become one message
-        raise DataError(f"Data file {path} could not be read as Parquet: {exc}.") from None
+        raise _unreadable(path, exc) from None
     present = [*names, *keys]
     for col in read_columns(study):
         if col not in present:
@@ -171,7 +177,7 @@ def _footer(path: Path, keys: dict[str, str | None], study: Study) -> tuple[int,
                 f"Data file {path}: column '{col}' named in the study file {study.path.name} "
                 f"is not in the data{suggest(col, present)}. Columns present: {listing}."
             )
-    return int(meta.num_rows), names
+    return meta
 
 
 def discover(study: Study, rows_per_partition: int = PARTITION_ROWS) -> Dataset:
@@ -234,13 +240,13 @@ def discover(study: Study, rows_per_partition: int = PARTITION_ROWS) -> Dataset:
                 f"{path.parent.name}), not by the market column '{market}'. Write it "
                 f"partitioned by market, e.g. to_parquet(folder, partition_cols=['{market}'])."
             )
-        rows, _ = _footer(path, keys, study)
+        meta = _footer(path, keys, study)
         if market in keys:
             value = keys[market]
             markets: tuple[str, ...] = () if value is None else (_key_label(value),)
         else:
-            markets = _file_markets(path, pq.read_metadata(path), market)
-        files.append(PartFile(i, str(path), tuple(keys.items()), rows, markets))
+            markets = _file_markets(path, meta, market)
+        files.append(PartFile(i, str(path), tuple(keys.items()), int(meta.num_rows), markets))
     groups = _market_groups(files)
     total = sum(f.rows for f in files)
     if total == 0:
@@ -334,7 +340,7 @@ def _read_file(pf: PartFile, study: Study) -> pd.DataFrame:
     try:
         frame = pq.read_table(path, columns=[c for c in wanted if c not in keys]).to_pandas()
     except Exception as exc:  # pyarrow's many reader errors become one message
-        raise DataError(f"Data file {path} could not be read as Parquet: {exc}.") from None
+        raise _unreadable(path, exc) from None
     frame = frame.reset_index(drop=True)
     for c in wanted:
         if c in keys:

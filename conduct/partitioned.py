@@ -56,6 +56,7 @@ from conduct.crossprod import (
 from conduct.demand import demand_columns, price_slope
 from conduct.errors import ConductError, DataError, EstimationError, StudyFileError
 from conduct.identify import Identification, check_identification
+from conduct.iv import group_sums
 from conduct.parquet_dataset import (
     FILE,
     KEEP,
@@ -304,8 +305,6 @@ def _pass_scores(part: pd.DataFrame, study: Study, demand: _Stage, supply: _Stag
         u = np.column_stack([u, full])
         ee = np.concatenate([ee, ees])
     if study.demand.errors == "cluster" and len(f):
-        from conduct.iv import group_sums
-
         u = group_sums(dense_codes(f[MARKET].to_numpy()), u)
     return _Scores(u.T @ u, ee, float(elasticity.sum()), int((~neg).sum()))
 
@@ -494,6 +493,19 @@ def _dropped(m: Moments, study: Study) -> tuple[int, dict[str, int]]:
     return int(m.scalars.get("dropped", 0)), dict(sorted(detail.items()))
 
 
+def _first_pass(st: Study, dataset: Dataset, compute: Callable[[Any], Any]
+                ) -> tuple[list[Any], Moments, tuple[str, str, str]]:
+    """Read and validate every part, reduce it to demand's moments; the parts for later."""
+    from dask import delayed
+
+    parts = dask_frame(dataset, st).to_delayed()
+    mom = compute(_tree([delayed(_pass_demand)(p, st) for p in parts], merge_all))
+    if mom.n == 0:
+        raise DataError(f"Data directory {dataset.root}: every row has a missing value; "
+                        "nothing is left.")
+    return parts, mom, _periods(mom, dataset, st)
+
+
 def check_partitioned(study: Study | str | Path, *, scheduler: str | None = None,
                       rows_per_partition: int = PARTITION_ROWS) -> str:
     """Read and validate every part of the dataset once; estimate nothing.
@@ -517,11 +529,7 @@ def check_partitioned(study: Study | str | Path, *, scheduler: str | None = None
     """
     st, _, dataset = _open(study, rows_per_partition)
     with _scheduler(scheduler) as compute:
-        from dask import delayed
-
-        parts = dask_frame(dataset, st).to_delayed()
-        mom = compute(_tree([delayed(_pass_demand)(p, st) for p in parts], merge_all))
-    kind, first, last = _periods(mom, dataset, st)
+        _, mom, (kind, first, last) = _first_pass(st, dataset, compute)
     dropped, detail = _dropped(mom, st)
     lines = [f"{dataset.root}: Parquet dataset by market ({dataset.layout}), "
              f"{len(dataset.files)} files read in {len(dataset.parts)} parts",
@@ -564,9 +572,7 @@ def estimate_partitioned(study: Study | str | Path, *, scheduler: str | None = N
     with _scheduler(scheduler) as compute:
         from dask import delayed
 
-        parts = dask_frame(dataset, st).to_delayed()
-        mom_d = compute(_tree([delayed(_pass_demand)(p, st) for p in parts], merge_all))
-        _, first, last = _periods(mom_d, dataset, st)
+        parts, mom_d, (_, first, last) = _first_pass(st, dataset, compute)
         demand = _solve(mom_d, ddesign, st, "demand")
         supply = None
         mom_s = None
@@ -600,6 +606,9 @@ def estimate_partitioned(study: Study | str | Path, *, scheduler: str | None = N
             f"The estimated demand slope is not negative at {wrong:.1%} of observations; "
             "those rows get no markup regressor and are left out of the supply relation."
         )
+    if st.supply is not None and len(_candidates(st)) < len(st.candidates):
+        warnings.append("No sellers or concentration column: the Cournot candidate was not "
+                        "tested.")
     if kind == "cluster" and mom_d.markets < 20:
         warnings.append(f"Only {mom_d.markets} market clusters: cluster-robust inference may "
                         "be unreliable.")

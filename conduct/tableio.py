@@ -98,9 +98,9 @@ def read_table(path: Path, sheet: str | None = None, what: str = "Data file",
         if parquet_files(path):
             raise DataError(
                 f"{what} {path} is a directory of Parquet files. A Parquet dataset partitioned "
-                "by market is read part by part, for the main panel only: set partitioned = "
-                "true under [panel] and run conduct estimate (in Python, "
-                "conduct.estimate_partitioned). Other commands, and conduct.estimate, read a "
+                "by market is read part by part only as the main panel (partitioned = true "
+                "under [panel]) and only by conduct estimate and conduct check (in Python, "
+                "conduct.estimate_partitioned); other commands, and conduct.estimate, read a "
                 "single file."
             )
         raise DataError(f"{what} {path} is a directory; give the path of a file.")

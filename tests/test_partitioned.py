@@ -401,6 +401,25 @@ def test_repeated_market_period_across_files(small: Written) -> None:
         estimate_partitioned(small.parted)
 
 
+def test_unreadable_file_in_the_dataset(small: Written) -> None:
+    bad = small.root / "parts" / "region=M03" / "broken.parquet"
+    bad.write_bytes(b"not parquet at all")
+    with pytest.raises(DataError, match=r"broken\.parquet could not be read as Parquet"):
+        estimate_partitioned(small.parted)
+
+
+def test_periods_written_differently_in_one_file(small: Written) -> None:
+    target = _file_of(small, "M04")
+    frame = pd.read_parquet(target)
+    frame["quarter"] = pd.date_range("2013-01-01", periods=len(frame), freq="QS").strftime(
+        "%Y-%m-%d")
+    frame.to_parquet(target, index=False)
+    with pytest.raises(DataError) as err:
+        estimate_partitioned(small.parted)
+    assert "quarter periods in" in str(err.value) and "date periods in" in str(err.value)
+    assert "region=M04" in str(err.value)
+
+
 def test_partitioned_by_another_column(small: Written) -> None:
     shutil.rmtree(small.root / "parts")
     small.frame.to_parquet(small.root / "parts", partition_cols=["quarter"], index=False)
