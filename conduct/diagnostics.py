@@ -18,7 +18,7 @@ import numpy as np
 from scipy import stats
 
 from conduct.errors import EstimationError
-from conduct.iv import CovSpec, cluster_cov, condition_number
+from conduct.iv import CovSpec, cluster_cov, condition_number, ls_coef
 from conduct.stockyogo import strength_reading
 from conduct.weakiv import effective_f, first_stage
 
@@ -206,8 +206,8 @@ def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
     coef = xtx_inv @ x.T @ endog
     resid = endog - x @ coef
     if exog.shape[1]:
-        pz = instruments - exog @ np.linalg.lstsq(exog, instruments, rcond=None)[0]
-        pe = endog - exog @ np.linalg.lstsq(exog, endog, rcond=None)[0]
+        pz = instruments - exog @ ls_coef(exog, instruments)
+        pe = endog - exog @ ls_coef(exog, endog)
     else:
         pz, pe = instruments, endog
     dof = n - kx - cov.df_penalty
@@ -217,7 +217,7 @@ def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
         v = cluster_cov(psi, cov, kx)[-k:, -k:]
         b = coef[-k:, j]
         f = float(b @ np.linalg.solve(v, b) / k)
-        fitted = pz @ np.linalg.lstsq(pz, pe[:, j], rcond=None)[0]
+        fitted = pz @ ls_coef(pz, pe[:, j])
         r2 = float(fitted @ fitted / (pe[:, j] @ pe[:, j]))
         out.append(FirstStage(name=name, f=f, p=float(stats.f.sf(f, k, dof)), df=(k, dof),
                               partial_r2=r2,
@@ -274,7 +274,7 @@ def endogeneity_test(y: np.ndarray, exog: np.ndarray, endog: np.ndarray,
     are zero.
     """
     z = np.column_stack([exog, instruments])
-    v = endog - z @ np.linalg.lstsq(z, endog, rcond=None)[0]
+    v = endog - z @ ls_coef(z, endog)
     x = np.column_stack([exog, endog, v])
     n, k = x.shape
     xtx_inv = np.linalg.inv(x.T @ x)

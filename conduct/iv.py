@@ -191,6 +191,42 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
     return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
 
 
+GRAM_COND = 1e8  # scaled cross-product condition number up to which normal equations are used
+
+
+def ls_coef(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients of ``b`` on the columns of ``a``.
+
+    Solved from the normal equations of the column-scaled design (one pass over
+    the rows) when that is well conditioned, else by :func:`numpy.linalg.lstsq`
+    (the minimum-norm solution; fitted values and residuals are the projection
+    either way).  Tests keep both routes equal to ``lstsq``.
+
+    Parameters
+    ----------
+    a : numpy.ndarray
+        (n, k) regressors.
+    b : numpy.ndarray
+        (n,) or (n, m) left-hand sides.
+
+    Returns
+    -------
+    numpy.ndarray
+        (k,) or (k, m) coefficients.
+    """
+    if a.shape[1] == 0:
+        return np.zeros((0, *b.shape[1:]))
+    scale = np.sqrt(np.einsum("ij,ij->j", a, a))
+    if np.all(scale > 0):
+        gram = (a.T @ a) / np.outer(scale, scale)
+        vals = np.linalg.eigvalsh(gram)
+        if vals[0] > 0 and vals[-1] / vals[0] < GRAM_COND:
+            rhs = (a.T @ b) / (scale[:, None] if b.ndim == 2 else scale)
+            sol = np.linalg.solve(gram, rhs)
+            return sol / (scale[:, None] if b.ndim == 2 else scale)
+    return np.linalg.lstsq(a, b, rcond=None)[0]
+
+
 def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.ndarray:
     """``target[rows] += values`` in place, without fancy indexing when ``rows`` is every row.
 

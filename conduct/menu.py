@@ -44,7 +44,7 @@ from scipy import stats
 from conduct.demand import DemandResult
 from conduct.design import prepare
 from conduct.errors import DataError, EstimationError
-from conduct.iv import CovSpec
+from conduct.iv import CovSpec, ls_coef
 from conduct.menu_stats import LackOfFit, lack_of_fit, orthonormal, pair_stats, weak_bounds
 from conduct.panel import Panel
 from conduct.study import Study
@@ -219,7 +219,7 @@ def _column(frame: pd.DataFrame, name: str, where: str) -> np.ndarray:
 def _residualise(x: np.ndarray, w: np.ndarray) -> np.ndarray:
     if w.shape[1] == 0:
         return x
-    return x - w @ np.linalg.lstsq(w, x, rcond=None)[0]
+    return x - w @ ls_coef(w, x)
 
 
 def menu_test(
@@ -371,7 +371,7 @@ def _concentrate_slope(
             "endogenous and uses one instrument, so testing needs at least two instruments; "
             "the set has one. Add an instrument or set cost_slope = false under [supply]."
         )
-    qhat = z @ np.linalg.lstsq(z, q, rcond=None)[0]
+    qhat = z @ ls_coef(z, q)
     denom = float(qhat @ q)
     if abs(denom) <= 1e-12 * float(q @ q):
         raise EstimationError(

@@ -36,7 +36,7 @@ from scipy import optimize, stats
 
 from conduct.absorb import dense_codes
 from conduct.errors import EstimationError, IdentificationError
-from conduct.iv import group_sums
+from conduct.iv import group_sums, ls_coef
 
 __all__ = [
     "ARSet",
@@ -350,7 +350,7 @@ def _design(
         raise EstimationError(f"df_absorbed must be non-negative, got {df_absorbed}")
     w, parts = _residualise(W, Z, *arrays)
     Zt = parts[0]
-    sv = np.linalg.svd(Zt, compute_uv=False)
+    sv = np.linalg.svd(np.linalg.qr(Zt, mode="r"), compute_uv=False)  # = those of Zt
     if sv.size == 0 or sv.min() <= sv.max() * max(Zt.shape) * np.finfo(float).eps * 10:
         raise EstimationError(
             "the excluded instruments are collinear among themselves or with the "
@@ -437,7 +437,7 @@ def _wald(d: _Design, target: np.ndarray, q: int, null: str) -> HypothesisTest:
         Numerator degrees of freedom (k, or k - p + 1 for the conditional F).
     """
     g = d.Z.T @ target
-    coef, *_ = np.linalg.lstsq(d.Z, target, rcond=None)
+    coef = ls_coef(d.Z, target)
     resid = target - d.Z @ coef
     meat = _meat(d, resid)
     try:
@@ -533,7 +533,7 @@ def first_stage(
         raise IdentificationError(
             f"{d.k} excluded instrument(s) for {p} endogenous regressor(s): not identified"
         )
-    coef, *_ = np.linalg.lstsq(d.Z, Xt, rcond=None)
+    coef = ls_coef(d.Z, Xt)
     fitted = d.Z @ coef
     tests = tuple(
         _wald(
@@ -692,7 +692,7 @@ def effective_f(
             f"the effective F is defined for one endogenous regressor, got {Xt.shape[1]}"
         )
     x = Xt[:, 0]
-    coef, *_ = np.linalg.lstsq(d.Z, x, rcond=None)
+    coef = ls_coef(d.Z, x)
     fitted = d.Z @ coef
     resid = x - fitted
     omega = _meat(d, resid)

@@ -173,3 +173,25 @@ def test_add_rows_equals_fancy_indexing() -> None:
         expected = target.copy()
         expected[rows] += vals[: len(rows)]
         np.testing.assert_array_equal(add_rows(target, rows, vals[: len(rows)]), expected)
+
+
+@pytest.mark.parametrize("case", ["well-conditioned", "mixed-scales", "near-collinear",
+                                  "rank-deficient", "matrix-rhs"])
+def test_ls_coef_equals_lstsq(case: str) -> None:
+    from conduct.iv import ls_coef
+
+    rng = np.random.default_rng(4)
+    a = rng.normal(size=(300, 4))
+    if case == "mixed-scales":
+        a = a * [1e-4, 1.0, 1e5, 3.0]
+    if case == "near-collinear":
+        a[:, 3] = a[:, 0] + 1e-9 * rng.normal(size=300)  # beyond the normal-equation range
+    if case == "rank-deficient":
+        a[:, 3] = 2.0 * a[:, 1]
+    b = rng.normal(size=(300, 2)) if case == "matrix-rhs" else rng.normal(size=300)
+    ref = np.linalg.lstsq(a, b, rcond=None)[0]  # numpy's SVD solver, the reference
+    got = ls_coef(a, b)
+    assert got.shape == ref.shape
+    np.testing.assert_allclose(a @ got, a @ ref, rtol=1e-9, atol=1e-9)  # same projection
+    if case in ("well-conditioned", "mixed-scales", "matrix-rhs"):
+        np.testing.assert_allclose(got, ref, rtol=1e-9)
