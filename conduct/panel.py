@@ -25,7 +25,8 @@ from conduct.study import Study
 from conduct.tableio import MARKET, PERIOD, TIME, read_table, rows_text
 
 __all__ = [
-    "MARKET", "PERIOD", "TIME", "Panel", "PanelDescription", "describe_assembly", "load_panel",
+    "MARKET", "PERIOD", "TIME", "Panel", "PanelDescription", "check_values", "describe_assembly",
+    "load_panel",
     "read_table", "row_fingerprints", "write_panel",
 ]
 
@@ -140,9 +141,27 @@ MAX_MAGNITUDE = 1e100  # squares and cross-products must stay finite in double p
 MIN_MAGNITUDE = 1e-100
 
 
-def _check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
-                  origin: Assembly) -> None:
-    """Finite numbers; positive price and quantity; H in (0, 1]; whole sellers >= 1."""
+def check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
+                 origin: Assembly) -> None:
+    """Refuse values the estimation cannot use, naming the file, column and rows.
+
+    Finite numbers of sensible magnitude; positive price and quantity; H in
+    (0, 1]; whole sellers >= 1.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Rows with the study's numeric columns as floats.
+    study : Study
+    rows : numpy.ndarray
+        Each row's number in its file, for messages.
+    origin : Assembly
+        Where each column came from, for messages.
+
+    Raises
+    ------
+    DataError
+    """
     spec = study.panel
     path = spec.file
     for col in study.numeric_columns():
@@ -245,7 +264,7 @@ def load_panel(study: Study) -> Panel:
     dropped = asm.dropped_rows + len(asm.frame) - len(full)
     for col in study.numeric_columns():
         full[col] = full[col].astype(float)
-    _check_values(full, study, rows, origin)
+    check_values(full, study, rows, origin)
 
     order = np.lexsort((full[TIME].to_numpy(), full[MARKET].to_numpy()))
     full = full.iloc[order].reset_index(drop=True)

@@ -29,7 +29,7 @@ import pyarrow.parquet as pq
 
 from conduct.coverage import Assembly
 from conduct.errors import DataError, suggest
-from conduct.panel import _check_values  # the in-memory path's value rules, reused as they are
+from conduct.panel import check_values  # the in-memory path's value rules
 from conduct.study import Study
 from conduct.tableio import (
     MARKET,
@@ -374,7 +374,7 @@ def _read_file(pf: PartFile, study: Study) -> pd.DataFrame:
         out.loc[keep, MARKET] = markets[inv_m]
         out.loc[keep, PERIOD] = labels[inv]
         out.loc[keep, TIME] = t[inv]
-        _check_values(kept, replace(study, panel=replace(spec, file=path)), rows[keep],
+        check_values(kept, replace(study, panel=replace(spec, file=path)), rows[keep],
                       _NO_ORIGIN)
     out[KIND] = np.full(n, kind, dtype=np.int8)
     out[FILE] = np.full(n, pf.index, dtype=np.int32)
