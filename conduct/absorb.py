@@ -133,11 +133,14 @@ def absorb(
     df = int(n1 + n2 - n_comp)
     cells = g1.astype(np.int64) * n2 + g2
     if len(g1) == n1 * n2 and np.array_equal(cells, np.arange(len(cells))):
-        # rows in grid order (first effect outer, as panels are sorted): exact by reshaping
-        grid = x.reshape(n1, n2, x.shape[1])
-        out = (grid - grid.mean(axis=1, keepdims=True) - grid.mean(axis=0, keepdims=True)
-               + grid.mean(axis=(0, 1), keepdims=True))
-        return Absorbed(np.asfortranarray(out.reshape(x.shape)), df, 0, "two-way exact")
+        # rows in grid order (first effect outer, as panels are sorted): exact by reshaping;
+        # x is column-major, so grid[b, a, j] = x[a * n2 + b, j] is a view, not a copy
+        grid = x.reshape((n2, n1, x.shape[1]), order="F")
+        first = grid.mean(axis=0, keepdims=True)  # means of the first effect's groups
+        out = grid - first
+        second = out.mean(axis=1, keepdims=True)  # then of the second's (balanced: exact)
+        out -= second
+        return Absorbed(out.reshape(x.shape, order="F"), df, 0, "two-way exact")
     if len(g1) == n1 * n2 and int(np.bincount(cells, minlength=n1 * n2).max()) == 1:
         out = _demean(_demean(x, g1, counts[0]), g2, counts[1])
         return Absorbed(out, df, 0, "two-way exact")

@@ -156,7 +156,9 @@ def prepare(
             f"[demand] hac_lags = {study.demand.hac_lags} is not below the {len(frame)} rows "
             f"of the {stage} stage; choose fewer lags (about 4 (n/100)^(2/9) is common).")
     names = list(data)
-    stacked = np.column_stack([data[k] for k in names]) if names else np.zeros((len(frame), 0))
+    stacked = np.empty((len(frame), len(names)), order="F")  # column-major: absorbed per column
+    for i, k in enumerate(names):
+        stacked[:, i] = data[k]
     absorbed = absorb(stacked, groups)
     columns = {k: absorbed.values[:, i] for i, k in enumerate(names)}
     if not groups:
@@ -178,9 +180,11 @@ def prepare(
     thin: dict[str, float] = {}
     if groups:
         for k in names:
+            if k.startswith("_"):
+                continue
             before = float(np.std(data[k]))
-            after = float(np.std(columns[k]))
-            if not k.startswith("_") and before > 0 and after / before < THIN_RATIO:
+            after = float(np.sqrt(np.dot(columns[k], columns[k]) / len(columns[k])))  # mean 0
+            if before > 0 and after / before < THIN_RATIO:
                 thin[k] = after / before
     return Prepared(columns=columns, constant=not groups, absorbed=absorbed, cov=cov,
                     markets=markets, thin=thin)

@@ -654,16 +654,16 @@ def condition_number(a: np.ndarray) -> float:
     """Condition number of ``a`` after scaling each column to unit root-mean-square."""
     if a.shape[1] == 0:
         return 1.0
-    scale = np.sqrt((a**2).mean(axis=0))
+    scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
     scale = np.where(scale > 0, scale, 1.0)
-    sv = np.linalg.svd(np.linalg.qr(a / scale, mode="r"), compute_uv=False)
+    sv = np.linalg.svd(np.linalg.qr(a, mode="r") / scale, compute_uv=False)
     return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 
 def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
     if a.shape[1] == 0:
         return
-    scale = np.sqrt((a**2).mean(axis=0))
+    scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
     zero = np.flatnonzero(scale < 1e-12 * max(1.0, float(scale.max())))
     if len(zero):
         label = names[zero[0]] if zero[0] < len(names) else f"column {zero[0] + 1}"
@@ -671,8 +671,9 @@ def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
             f"The {what} include '{label}', which has no variation left after the fixed "
             "effects are removed; drop it or change the effects."
         )
-    # QR first: the singular values of R equal those of the (n, k) matrix, at O(n k^2) cost
-    s = np.linalg.svd(np.linalg.qr(a / scale, mode="r"), compute_uv=False)
+    # QR first: the singular values of R equal those of the (n, k) matrix, at O(n k^2)
+    # cost; scaling the columns of a scales those of R (a D^-1 = Q R D^-1)
+    s = np.linalg.svd(np.linalg.qr(a, mode="r") / scale, compute_uv=False)
     cond = s[0] / s[-1] if s[-1] > 0 else np.inf
     if cond > 1e10:
         raise EstimationError(
