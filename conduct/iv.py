@@ -194,7 +194,7 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
 GRAM_COND = 1e8  # scaled cross-product condition number up to which normal equations are used
 
 
-def ls_coef(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+def ls_coef(a: np.ndarray, b: np.ndarray, max_cond: float = GRAM_COND) -> np.ndarray:
     """Least-squares coefficients of ``b`` on the columns of ``a``.
 
     Solved from the normal equations of the column-scaled design (one pass over
@@ -208,6 +208,10 @@ def ls_coef(a: np.ndarray, b: np.ndarray) -> np.ndarray:
         (n, k) regressors.
     b : numpy.ndarray
         (n,) or (n, m) left-hand sides.
+    max_cond : float
+        Largest condition number of the scaled cross-product matrix solved
+        directly (its rounding error in the coefficients is about
+        ``max_cond * 1e-16`` relative).
 
     Returns
     -------
@@ -220,7 +224,7 @@ def ls_coef(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     if np.all(scale > 0):
         gram = (a.T @ a) / np.outer(scale, scale)
         vals = np.linalg.eigvalsh(gram)
-        if vals[0] > 0 and vals[-1] / vals[0] < GRAM_COND:
+        if vals[0] > 0 and vals[-1] / vals[0] < max_cond:
             rhs = (a.T @ b) / (scale[:, None] if b.ndim == 2 else scale)
             sol = np.linalg.solve(gram, rhs)
             return sol / (scale[:, None] if b.ndim == 2 else scale)
@@ -513,7 +517,7 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec,
 class Projection:
     """The first stage of 2SLS for fixed regressors and instruments, computed once.
 
-    ``X_hat = P_Z X`` (from a QR factorisation of Z) and ``(X_hat'X_hat)^-1`` are
+    ``X_hat = P_Z X`` (see :func:`ls_coef`) and ``(X_hat'X_hat)^-1`` are
     shared by every dependent variable fitted on the same design (the supply
     relation and each candidate's restricted relation).
 
@@ -526,9 +530,10 @@ class Projection:
     """
 
     def __init__(self, x: np.ndarray, z: np.ndarray) -> None:
-        q, _ = np.linalg.qr(z)
         self.x = x
-        self.xhat = q @ (q.T @ x)
+        # X_hat = Z (Z'Z)^-1 Z'X; from the cross-products when Z is well conditioned
+        # (rounding about 1e-10 relative), else by lstsq
+        self.xhat = z @ ls_coef(z, x, max_cond=1e6)
         self.bread = np.linalg.inv(self.xhat.T @ self.xhat)
 
     def fit(self, y: np.ndarray, names: tuple[str, ...], cov: CovSpec, j_df: int = 0
@@ -575,7 +580,7 @@ def fit_2sls_arrays(y: np.ndarray, x: np.ndarray, z: np.ndarray, names: tuple[st
 
     Notes
     -----
-    With ``X_hat = P_Z X`` (from a QR factorisation of Z), ``b = (X_hat'X)^-1 X_hat'y``
+    With ``X_hat = P_Z X`` (see :class:`Projection`), ``b = (X_hat'X)^-1 X_hat'y``
     and the influence is ``psi_i = n (X_hat'X_hat)^-1 X_hat_i e_i``; the covariance is
     ``s2 (X_hat'X_hat)^-1`` (homoskedastic) or :func:`cluster_cov` of ``psi``.
     """
