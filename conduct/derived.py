@@ -24,7 +24,7 @@ from scipy import stats
 
 from conduct.demand import DemandResult
 from conduct.design import codes
-from conduct.iv import cluster_cov
+from conduct.iv import cluster_cov, group_sums
 from conduct.panel import MARKET, PERIOD, TIME, Panel
 from conduct.study import Study
 from conduct.supply import SupplyResult
@@ -138,7 +138,8 @@ def _group_means(p: np.ndarray, q: np.ndarray, demand: DemandResult, supply: Sup
     theta only), and its variance is ``g' V g`` with ``V`` the covariance of the
     stacked influence functions of alpha and theta, computed once.  The Lerner
     mean weights by ``1/P``.  Marginal cost is ``mean_S(P) - m``, with the variance of
-    ``m``.  Group sums use ``bincount``: nothing of size rows x groups is formed.
+    ``m``.  Group sums use :func:`conduct.iv.group_sums`: nothing of size rows x groups
+    is formed.
     """
     qstar = supply.qstar
     ok = np.isfinite(qstar)
@@ -146,38 +147,45 @@ def _group_means(p: np.ndarray, q: np.ndarray, demand: DemandResult, supply: Sup
     dq = np.zeros_like(demand.slope_grad)
     dq[ok] = (q[ok] / slope[ok] ** 2)[:, None] * demand.slope_grad[ok]
     n_groups = len(labels)
-    gi = np.where(ok, group, 0)
-    counts = np.bincount(gi, weights=ok.astype(float), minlength=n_groups)
+    counts = np.bincount(group, weights=ok.astype(float), minlength=n_groups)
     keep = counts > 0
     names = [lab for lab, k in zip(labels, keep, strict=True) if k]
 
-    def gmean(v: np.ndarray) -> np.ndarray:
-        return (np.bincount(gi, weights=np.where(ok, v, 0.0), minlength=n_groups)
-                / np.where(keep, counts, 1.0))[keep]
+    def gmeans(m: np.ndarray) -> np.ndarray:
+        """Group means of each column of ``m`` (rows without Q* hold zeros)."""
+        sums = group_sums(group, m)
+        return (sums / np.where(keep, counts, 1.0)[:, None])[keep]
 
     z = float(stats.norm.ppf(0.5 + level / 2))
     qs = np.where(ok, qstar, 0.0)
     stacked = np.column_stack([demand.fit.influence, supply.theta_influence])
     v_all = cluster_cov(stacked, supply.full_cov, 1)  # (k_d + 1, k_d + 1)
     k_d = demand.fit.influence.shape[1]
+    price_mean = gmeans(np.where(ok, p, 0.0)[:, None])[:, 0]
+    inv_p = 1.0 / p
+    # [mean(w Q*), mean(w dQ*/dalpha)] per weight w, shared by every constant-theta model
+    unit = {what: gmeans(np.column_stack([qs * w, dq * w[:, None]]))
+            for what, w in (("markup", np.ones_like(p)), ("lerner", inv_p))}
     out = []
     for name, h in variants:
-        hv = np.where(ok, h, 0.0)
-        estimated = name == "estimated"
-        for what, weight in (("markup", np.ones_like(p)), ("lerner", 1.0 / p)):
-            value = gmean(hv * qs * weight)
-            grad = np.zeros((int(keep.sum()), k_d + 1))
-            for j in range(k_d):
-                grad[:, j] = gmean(hv * weight * dq[:, j])
-            if estimated:
-                grad[:, k_d] = gmean(qs * weight)
-            var = np.einsum("gi,ij,gj->g", grad, v_all, grad)
-            se = np.sqrt(np.clip(var, 0, None))
-            if what == "markup":
-                markup, markup_se = value, se
+        constant = bool(np.all(h[ok] == h[ok][0])) if ok.any() else True
+        pieces = {}
+        for what, w in (("markup", np.ones_like(p)), ("lerner", inv_p)):
+            if constant:
+                theta = float(h[ok][0]) if ok.any() else 0.0
+                means = theta * unit[what]
             else:
-                lerner, lerner_se = value, se
-        mc = gmean(np.where(ok, p, 0.0)) - markup
+                hv = np.where(ok, h, 0.0) * w
+                means = gmeans(np.column_stack([hv * qs, dq * hv[:, None]]))
+            value = means[:, 0]
+            grad = np.zeros((len(value), k_d + 1))
+            grad[:, :k_d] = means[:, 1:]
+            if name == "estimated":
+                grad[:, k_d] = unit[what][:, 0]
+            var = np.einsum("gi,ij,gj->g", grad, v_all, grad)
+            pieces[what] = (value, np.sqrt(np.clip(var, 0, None)))
+        (markup, markup_se), (lerner, lerner_se) = pieces["markup"], pieces["lerner"]
+        mc = price_mean - markup
         out.append(pd.DataFrame({
             "model": name, "group": names, "rows": counts[keep].astype(int),
             "mc": mc, "mc_lo": mc - z * markup_se, "mc_hi": mc + z * markup_se,
