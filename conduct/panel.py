@@ -266,9 +266,14 @@ def load_panel(study: Study) -> Panel:
         full[col] = full[col].astype(float)
     check_values(full, study, rows, origin)
 
-    order = np.lexsort((full[TIME].to_numpy(), full[MARKET].to_numpy()))
-    full = full.iloc[order].reset_index(drop=True)
-    rows = rows[order]
+    # market then period order; markets compared through sorted codes (labels sort alike)
+    m_codes = pd.factorize(full[MARKET], sort=True)[0]
+    t = full[TIME].to_numpy()
+    step_m, step_t = np.diff(m_codes), np.diff(t)
+    if not np.all((step_m > 0) | ((step_m == 0) & (step_t > 0))):
+        order = np.lexsort((t, m_codes))
+        full = full.iloc[order].reset_index(drop=True)
+        rows = rows[order]
     frame = full[[*cols, PERIOD, TIME, MARKET]].copy()
     frame[TIME] = frame[TIME].astype(np.int64)
 
