@@ -837,7 +837,7 @@ def lerner_figure(res: Results) -> Figure:
         names = ", ".join(_short(sp.label) for sp in flags.splits if sp.kind == kind)
         med = _by_period(np.where(mask, lerner_own, np.nan), t, [0.5])[0.5]
         n = len(flagged)
-        ax.plot(med.index, med.to_numpy(), color=colour, lw=2,
+        ax.plot(med.index, med.to_numpy(), color=colour, lw=2, zorder=4,  # above the break line
                 ls="-." if kind == "group" else (0, (1, 1)),
                 label=f"flagged {kind} {names} ({n} market{'s' if n != 1 else ''}), "
                       "own \N{GREEK SMALL LETTER THETA}")
