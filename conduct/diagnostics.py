@@ -203,7 +203,7 @@ def _hac_table(endog: np.ndarray, instruments: np.ndarray, exog: np.ndarray,
     x = np.column_stack([exog, instruments])
     kx = x.shape[1]
     xtx_inv = np.linalg.inv(x.T @ x)
-    coef = xtx_inv @ x.T @ endog
+    coef = xtx_inv @ (x.T @ endog)
     resid = endog - x @ coef
     if exog.shape[1]:
         pz = instruments - exog @ ls_coef(exog, instruments)
@@ -278,7 +278,7 @@ def endogeneity_test(y: np.ndarray, exog: np.ndarray, endog: np.ndarray,
     x = np.column_stack([exog, endog, v])
     n, k = x.shape
     xtx_inv = np.linalg.inv(x.T @ x)
-    b = xtx_inv @ x.T @ y
+    b = xtx_inv @ (x.T @ y)
     e = y - x @ b
     p = endog.shape[1]
     if cov.kind == "homoskedastic":
