@@ -5,8 +5,10 @@ Unknown break date: for every candidate date in the middle 70% of periods
 date (shared demand, sequential covariance) and the Wald statistic of equal
 thetas is computed; the test statistic is the largest of them (sup-Wald,
 Andrews 1993).  The date itself is estimated as the candidate that minimises
-the sum of squared supply residuals (the least-squares break-date estimator
-of Bai 1997, applied to the 2SLS residuals as in Hall, Han & Boldea 2012),
+the sum of squared second-stage residuals, price on the fitted regressors
+(the least-squares break-date estimator of Bai 1997 applied to 2SLS as in
+Hall, Han & Boldea 2012, from memory; the structural residuals are not what
+2SLS minimises, and their sum can favour a date where theta does not move),
 which, unlike the arg-max of the Wald path, does not drift towards dates
 where the variance happens to be small.  Its critical values for one restriction at 15% trimming are
 those of Andrews (1993) as corrected in Andrews (2003): 7.12 (10%), 8.68 (5%)
@@ -169,7 +171,9 @@ def sup_wald_break(panel: Panel, study: Study, demand: DemandResult, *,
         d = fit.params[i1] - fit.params[i0]
         var = cov[i0, i0] + cov[i1, i1] - 2 * cov[i0, i1]
         wald = float(d * d / var)
-        ssr = float(fit.resid @ fit.resid)
+        # second-stage residuals (price on the fitted regressors): the 2SLS criterion
+        second = system.prepared.columns["_p"] - system.projection.xhat @ fit.params
+        ssr = float(second @ second)
         path.append((labels[j], wald))
         sup = max(sup, wald)
         if best is None or ssr < best[0]:
