@@ -42,6 +42,8 @@ def dense_codes(values: np.ndarray) -> np.ndarray:
     values = np.asarray(values)
     if values.size == 0:
         return np.zeros(0, dtype=np.int64)
+    if values.dtype.kind == "u" and int(values.max()) > np.iinfo(np.int64).max:
+        return np.unique(values, return_inverse=True)[1].astype(np.int64)
     if values.dtype.kind in "iub":
         v = values.astype(np.int64, copy=False)
         lo, hi = int(v.min()), int(v.max())
@@ -51,7 +53,10 @@ def dense_codes(values: np.ndarray) -> np.ndarray:
             return (np.cumsum(present) - 1)[shifted].astype(np.int64, copy=False)
     if values.dtype.kind == "f" and np.isnan(values).any():
         return np.unique(values, return_inverse=True)[1].astype(np.int64)
-    return pd.factorize(values, sort=True)[0].astype(np.int64, copy=False)
+    coded = pd.factorize(values, sort=True)[0]
+    if coded.size and int(coded.min()) < 0:  # missing values (None, NaT): as np.unique does
+        return np.unique(values, return_inverse=True)[1].astype(np.int64)
+    return coded.astype(np.int64, copy=False)
 
 
 @dataclass(frozen=True, slots=True)

@@ -9,7 +9,9 @@ are scheduled.
 Replicates run on a :class:`ReplicateKernel`: the raw demand and supply
 columns are built once, and each replicate only gathers rows, absorbs the
 fixed effects and solves the two 2SLS normal equations (point estimates, no
-standard errors or diagnostics).  Tests keep it equal to re-running
+standard errors or diagnostics); a resample whose design is too
+ill-conditioned for the normal equations goes through the full path.  Tests
+keep it equal to re-running
 :func:`conduct.demand.estimate_demand` and :func:`conduct.supply.estimate_supply`
 on the resampled panel (:func:`one_replicate`), which remains the reference and
 the path for LIML and GMM demand.
@@ -34,7 +36,7 @@ from conduct.supply import estimate_supply, supply_columns
 __all__ = ["BootstrapResult", "ReplicateKernel", "cluster_bootstrap", "one_replicate",
            "replicate_kernel", "resample_markets"]
 
-SINGULAR = 1e13  # condition number of Z'Z or X_hat'X beyond which a replicate is dropped
+SINGULAR = 1e10  # scaled Z'Z or X_hat'X condition beyond which the full path is used instead
 
 
 @dataclass(frozen=True, slots=True)
@@ -97,15 +99,25 @@ def _draw(n_markets: int, seed: int, r: int) -> np.ndarray:
 
 
 def _tsls(y: np.ndarray, x: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """2SLS point estimates from the normal equations; ValueError when near-singular."""
-    zz, zx = z.T @ z, z.T @ x
-    if np.linalg.cond(zz) > SINGULAR:
+    """2SLS point estimates from the normal equations; ValueError when near-singular.
+
+    Columns are scaled to unit length inside the cross-products, so the
+    singularity checks do not depend on the units of the data.
+    """
+    zz, zx, zy = z.T @ z, z.T @ x, z.T @ y
+    sz = np.sqrt(np.diag(zz))
+    sx = np.sqrt(np.einsum("ij,ij->j", x, x))
+    if np.any(sz <= 0) or np.any(sx <= 0):
+        raise ValueError("a column without variation")
+    zz_s = zz / np.outer(sz, sz)
+    zx_s = zx / np.outer(sz, sx)
+    if np.linalg.cond(zz_s) > SINGULAR:
         raise ValueError("instruments nearly collinear")
-    a = np.linalg.solve(zz, zx)
-    xpx = zx.T @ a
+    a = np.linalg.solve(zz_s, zx_s)
+    xpx = zx_s.T @ a
     if np.linalg.cond(xpx) > SINGULAR:
         raise ValueError("regressors nearly collinear given the instruments")
-    return np.linalg.solve(xpx, a.T @ (z.T @ y))
+    return np.linalg.solve(xpx, a.T @ (zy / sz)) / sx
 
 
 @dataclass(frozen=True)
@@ -136,6 +148,9 @@ class ReplicateKernel:
     effects : tuple of str
     price_name, form : str
     cost_slope : bool
+    panel, study
+        For replicates whose design is too ill-conditioned for the normal
+        equations: those are estimated by :func:`one_replicate` instead.
     """
 
     order: np.ndarray
@@ -156,6 +171,8 @@ class ReplicateKernel:
     price_name: str
     form: str
     cost_slope: bool
+    panel: Panel
+    study: Study
 
     @property
     def n_markets(self) -> int:
@@ -204,7 +221,8 @@ class ReplicateKernel:
             inst = s[:, 2 + self.n_cost:2 + self.n_cost + self.n_instr]
             bs = _tsls(s[:, 0], np.column_stack([ex, en]), np.column_stack([ex, inst]))
         except (ValueError, np.linalg.LinAlgError, ConductError):
-            return float("nan")
+            # ill-conditioned resample: the full path decides (estimate or refuse)
+            return one_replicate(self.panel, self.study, seed, r)
         theta = float(bs[ex.shape[1]])
         return theta if np.isfinite(theta) else float("nan")
 
@@ -247,7 +265,7 @@ def replicate_kernel(panel: Panel, study: Study) -> ReplicateKernel | None:
         supply=np.column_stack([scols[c] for c in names_s]), n_cost=len(cost),
         n_instr=len(sraw), p=sdata["_p"], q=sdata["Q"], effects=tuple(study.demand.effects),
         price_name=dc.price_name, form=study.demand.form,
-        cost_slope=bool(study.supply.cost_slope),
+        cost_slope=bool(study.supply.cost_slope), panel=panel, study=study,
     )
 
 

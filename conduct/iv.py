@@ -191,7 +191,7 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
     return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
 
 
-GRAM_COND = 1e8  # scaled cross-product condition number up to which normal equations are used
+GRAM_COND = 1e6  # scaled cross-product condition up to which normal equations are used
 
 
 def ls_coef(a: np.ndarray, b: np.ndarray, max_cond: float = GRAM_COND) -> np.ndarray:

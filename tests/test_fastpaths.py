@@ -15,7 +15,7 @@ from conduct.design import _nested
 
 
 @pytest.mark.parametrize("kind", ["small-ints", "sparse-ints", "negative-ints", "floats",
-                                  "strings", "bools"])
+                                  "strings", "bools", "big-uint64", "datetimes-with-nat"])
 def test_dense_codes_equal_numpy_unique(kind: str) -> None:
     rng = np.random.default_rng(7)
     values = {
@@ -26,6 +26,11 @@ def test_dense_codes_equal_numpy_unique(kind: str) -> None:
         "strings": np.asarray([f"market {v}" for v in rng.integers(0, 120, 2_000)],
                               dtype=object),
         "bools": rng.integers(0, 2, 2_000).astype(bool),
+        "big-uint64": (rng.integers(0, 5, 2_000).astype(np.uint64) * np.uint64(2**62)
+                       + np.uint64(7)),  # values above 2**63
+        "datetimes-with-nat": np.where(rng.integers(0, 5, 2_000) == 0, np.datetime64("NaT"),
+                                       np.datetime64("2020-01-01")
+                                       + rng.integers(0, 9, 2_000).astype("timedelta64[D]")),
     }[kind]
     expected = np.unique(values, return_inverse=True)[1]
     got = dense_codes(values)
@@ -176,7 +181,7 @@ def test_add_rows_equals_fancy_indexing() -> None:
 
 
 @pytest.mark.parametrize("case", ["well-conditioned", "mixed-scales", "near-collinear",
-                                  "rank-deficient", "matrix-rhs"])
+                                  "rank-deficient", "matrix-rhs", "near-the-limit"])
 def test_ls_coef_equals_lstsq(case: str) -> None:
     from conduct.iv import ls_coef
 
@@ -186,6 +191,9 @@ def test_ls_coef_equals_lstsq(case: str) -> None:
         a = a * [1e-4, 1.0, 1e5, 3.0]
     if case == "near-collinear":
         a[:, 3] = a[:, 0] + 1e-9 * rng.normal(size=300)  # beyond the normal-equation range
+    if case == "near-the-limit":
+        a[:, 3] = a[:, 0] + 3e-3 * rng.normal(size=300)
+        a[:, 1] += 100.0  # an uncentred column, as a constant-plus-levels design has
     if case == "rank-deficient":
         a[:, 3] = 2.0 * a[:, 1]
     b = rng.normal(size=(300, 2)) if case == "matrix-rhs" else rng.normal(size=300)
@@ -195,3 +203,57 @@ def test_ls_coef_equals_lstsq(case: str) -> None:
     np.testing.assert_allclose(a @ got, a @ ref, rtol=1e-9, atol=1e-9)  # same projection
     if case in ("well-conditioned", "mixed-scales", "matrix-rhs"):
         np.testing.assert_allclose(got, ref, rtol=1e-9)
+    if case == "near-the-limit":
+        from conduct.iv import GRAM_COND
+
+        scale = np.sqrt((a * a).sum(axis=0))
+        vals = np.linalg.eigvalsh(a.T @ a / np.outer(scale, scale))
+        assert 1e5 < vals[-1] / vals[0] < GRAM_COND  # solved by the normal equations
+        np.testing.assert_allclose(got, ref, rtol=1e-9)
+        resid, resid_ref = b - a @ got, b - a @ ref
+        np.testing.assert_allclose(resid, resid_ref, rtol=1e-8, atol=1e-10)
+
+
+@pytest.mark.parametrize("factor", [1e5, 4e3, 1e-4])
+def test_replicate_kernel_does_not_depend_on_units(tmp_path, factor: float) -> None:  # type: ignore[no-untyped-def]
+    from dataclasses import replace
+
+    from conduct.bootstrap import one_replicate, replicate_kernel
+
+    panel, study = _kernel_case(tmp_path, {})
+    col = study.supply.cost_shifters[0]  # an instrument of both stages, in other units
+    panel = replace(panel, frame=panel.frame.assign(**{col: panel.frame[col] * factor}))
+    kernel = replicate_kernel(panel, study)
+    assert kernel is not None
+    full = np.array([one_replicate(panel, study, 7, r) for r in range(4)])
+    fast = np.array([kernel.theta(7, r) for r in range(4)])
+    assert np.all(np.isfinite(full))
+    np.testing.assert_allclose(fast, full, rtol=1e-8)
+
+
+def test_replicate_kernel_hands_ill_conditioned_resamples_to_the_full_path(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    from dataclasses import replace
+
+    from conduct import bootstrap
+
+    panel, study = _kernel_case(tmp_path, {})
+    kernel = bootstrap.replicate_kernel(panel, study)
+    assert kernel is not None
+    calls = []
+    real = bootstrap.one_replicate
+
+    def spy(*args):  # type: ignore[no-untyped-def]
+        calls.append(args[2:])
+        return real(*args)
+
+    strict = replace(kernel)
+    old = bootstrap.SINGULAR
+    try:
+        bootstrap.SINGULAR = 1.0  # every design counts as ill-conditioned
+        bootstrap.one_replicate = spy  # type: ignore[assignment]
+        theta = strict.theta(3, 1)
+    finally:
+        bootstrap.SINGULAR = old
+        bootstrap.one_replicate = real  # type: ignore[assignment]
+    assert calls == [(3, 1)]
+    assert theta == real(panel, study, 3, 1)
