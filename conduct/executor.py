@@ -55,7 +55,8 @@ from typing import Any, Protocol, TypeVar
 from conduct.errors import ConductError
 from conduct.progress import Progress
 
-__all__ = ["DaskMapper", "InProcessMapper", "Mapper", "ProcessMapper", "chunked", "make_mapper"]
+__all__ = ["DaskMapper", "InProcessMapper", "Mapper", "ProcessMapper", "check_workers", "chunked",
+           "make_mapper"]
 
 T = TypeVar("T")
 
@@ -307,7 +308,7 @@ class DaskMapper:
         client = _connect(distributed, self.address)
         bar = Progress(len(items), self.label, quiet=self.quiet)
         try:
-            _check_workers(client, self.address)
+            check_workers(client, self.address)
             n_workers = len(client.scheduler_info()["workers"])
             chunks = chunked(items, _chunk_size(len(items), n_workers, self.chunksize))
             shared = client.scatter(task, broadcast=True, hash=False)
@@ -348,7 +349,19 @@ def _connect(distributed: Any, address: str) -> Any:
         ) from exc
 
 
-def _check_workers(client: Any, address: str) -> None:
+def check_workers(client: Any, address: str) -> None:
+    """Refuse a Dask cluster without workers or whose workers run another conduct.
+
+    Parameters
+    ----------
+    client : distributed.Client
+    address : str
+        The scheduler's address, for messages.
+
+    Raises
+    ------
+    ConductError
+    """
     try:
         client.wait_for_workers(1, timeout=_DASK_TIMEOUT)
     except TimeoutError as exc:

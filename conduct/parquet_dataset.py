@@ -158,7 +158,11 @@ def _file_markets(path: Path, meta: Any, market: str) -> tuple[str, ...]:
             values.update((stats.min, stats.max))
         if len(values) == 1:
             return tuple(market_labels(pd.Series(list(values))))
-    col = pq.read_table(path, columns=[market]).column(0).to_pandas().dropna()
+    try:
+        col = pq.read_table(path, columns=[market]).column(0).to_pandas().dropna()
+    except Exception as exc:  # pyarrow's many reader errors become one message
+        raise DataError(f"Data file {path}: its market column '{market}' could not be read "
+                        f"as Parquet: {exc}.") from None
     return tuple(sorted(set(market_labels(col.drop_duplicates().reset_index(drop=True)))))
 
 

@@ -55,6 +55,7 @@ from conduct.crossprod import (
 )
 from conduct.demand import demand_columns, price_slope
 from conduct.errors import ConductError, DataError, EstimationError, StudyFileError
+from conduct.executor import check_workers
 from conduct.identify import Identification, check_identification
 from conduct.iv import group_sums
 from conduct.parquet_dataset import (
@@ -351,6 +352,7 @@ def _scheduler(address: str | None) -> Iterator[Callable[[Any], Any]]:
     except (OSError, TimeoutError, ValueError) as exc:
         raise ConductError(f"Cannot reach the Dask scheduler at '{address}': {exc}.") from None
     try:
+        check_workers(client, address)
         yield lambda obj: client.compute(obj).result()
     finally:
         client.close()
@@ -407,6 +409,11 @@ def _solve(m: Moments, design: _Design, study: Study, stage: str) -> _Stage:
         raise EstimationError(
             f"{kz} excluded instrument(s) for {ke} endogenous regressor(s) in the {stage} "
             "stage: the equation is under-identified; add instruments."
+        )
+    if study.demand.errors == "cluster" and g < 2:
+        raise EstimationError(
+            f"The {stage} stage asks for cluster-robust errors by market, but the rows used "
+            "hold a single market. Use errors = \"robust\" under [demand]."
         )
     p = partial(m, market_fe=market_fe, period_fe=period_fe)
     penalty = p.df_absorbed

@@ -218,6 +218,17 @@ class PartitionedResult:
         return doc
 
 
+def _finite(value: Any) -> Any:
+    """``value`` with NaN and infinite floats replaced by None (JSON null), recursively."""
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    return value
+
+
 def write_result(res: PartitionedResult, *, label: str | None = None,
                  argv: tuple[str, ...] | list[str] = ()) -> tuple[Path, dict[str, Any]]:
     """Write the result as ``<runs>/partitioned/<id>.json``, atomically.
@@ -258,14 +269,16 @@ def write_result(res: PartitionedResult, *, label: str | None = None,
     }
     base = label or f"{now:%Y%m%dT%H%M%SZ}"
     tmp = folder / f".incomplete-{base}-{os.getpid()}.json"
-    text = json.dumps(doc, indent=2, sort_keys=True, allow_nan=False) + "\n"
+    text = json.dumps(_finite(doc), indent=2, sort_keys=True, allow_nan=False) + "\n"
     try:
         tmp.write_text(text, encoding="utf-8")
         for i in range(1, 1000):
             target = folder / (f"{base}.json" if i == 1 else f"{base}-{i}.json")
-            if not target.exists():
-                os.rename(tmp, target)
-                return target, doc
+            try:
+                os.link(tmp, target)  # atomic, and fails rather than replace a file
+            except FileExistsError:
+                continue
+            return target, doc
         raise ConductError(f"Could not find a free file name for '{base}' in {folder}.")
     finally:
         tmp.unlink(missing_ok=True)

@@ -147,12 +147,16 @@ def _read_stata(path: Path) -> pd.DataFrame:
         for col in named.columns:
             if isinstance(named[col].dtype, pd.CategoricalDtype):
                 labels[str(col)] = [str(c) for c in named[col].cat.categories]
-    except ValueError:  # labels pandas cannot turn into categories: match label sets by name
+    except ValueError:  # repeated labels pandas cannot turn into categories
         with pd.io.stata.StataReader(path) as reader:
             reader.read(convert_categoricals=False)
             sets = reader.value_labels()
-        labels = {str(c): [str(v) for v in sets[c].values()] for c in frame.columns
-                  if c in sets}
+            # each variable's label-set name (pandas keeps it privately); else same name
+            attached = getattr(reader, "_lbllist", None)
+        names = (list(attached) if attached is not None and len(attached) == frame.shape[1]
+                 else [str(c) for c in frame.columns])
+        labels = {str(c): [str(v) for v in sets[name].values()]
+                  for c, name in zip(frame.columns, names, strict=True) if name in sets}
     frame.attrs["value_labels"] = labels
     return frame
 

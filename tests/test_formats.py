@@ -12,6 +12,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import pytest
 from conftest import Project
@@ -104,3 +105,27 @@ def test_pq_suffix_reads_parquet(project: Project) -> None:
     res = project.check()
     assert res.code == 0, res.err
     assert "rows 144, markets 12, periods 12" in res.out
+
+
+def test_stata_labels_under_another_name_and_repeated_are_refused(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    """A label set named unlike its variable, with a repeated label (pandas cannot make
+    categories of it), still marks the column as codes (``label values diesel dlab``)."""
+    from conduct.errors import DataError
+    from conduct.tableio import read_table, to_numeric
+
+    path = tmp_path / "lab.dta"
+    frame = pd.DataFrame({"region": ["A", "B", "C"],
+                          "diesel": np.array([1, 2, 3], dtype=np.int32)})
+    frame.to_stata(path, write_index=False, version=118,
+                   value_labels={"diesel": {1: "low", 2: "low", 3: "high"}})
+    raw = bytearray(path.read_bytes())
+    name = b"diesel\x00"
+    at = [i for i in range(len(raw)) if raw.startswith(name, i)]
+    for i in at[1:]:  # the variable's label-list entry and the label table's own name
+        raw[i:i + len(name)] = b"dlab\x00\x00\x00"
+    path.write_bytes(bytes(raw))
+    with pytest.raises(ValueError):  # the case: pandas refuses to make categories
+        pd.read_stata(path, convert_categoricals=True)
+    table = read_table(path)
+    with pytest.raises(DataError, match="'diesel' carries Stata value labels"):
+        to_numeric(table, "diesel", path, np.arange(3) + 1)

@@ -92,9 +92,17 @@ def write_panel(root: Path, spec: SimulationSpec = SPEC, *, drop: float = 0.0,
 
 
 def rel(a: object, b: object) -> float:
-    """Largest relative difference between two arrays."""
+    """Largest relative difference between two arrays; infinite when either holds a NaN."""
     x, y = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
+    if np.isnan(x).any() or np.isnan(y).any():
+        return float("inf")
     return float(np.max(np.abs(x - y) / np.abs(y)))
+
+
+def test_rel_fails_on_nan() -> None:
+    assert rel([1.0, np.nan], [1.0, 2.0]) == float("inf")
+    assert rel([1.0, 2.0], [1.0, np.nan]) == float("inf")
+    assert rel([1.0, 2.0], [1.0, 2.0]) == 0.0
 
 
 def assert_same(part: PartitionedResult, mem: Results) -> dict[str, float]:
@@ -476,3 +484,53 @@ def test_moments_of_parts_add_up_and_partial_out_two_way_effects() -> None:
     p = partial(summed, market_fe=True, period_fe=True)
     np.testing.assert_allclose(p.gram, within.T @ within, rtol=1e-9)
     assert p.df_absorbed == 9 + 7 - 1
+
+
+def test_one_market_with_cluster_errors_is_named(tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    w = write_panel(tmp_path, SimulationSpec(markets=1, periods=40, seed=2), layout="files")
+    w.edit(lambda t: t.replace('effects = ["market", "period"]', "effects = []"))
+    for study in (w.single, w.parted):  # both paths refuse with exit 2, naming the remedy
+        res = _cli(capsys, "estimate", study)
+        assert res.code == 2, res.err
+        assert "single market" in res.err and "robust" in res.err, res.err
+        assert "Traceback" not in res.err
+
+
+def test_unreadable_market_column_in_a_flat_file(tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    import pyarrow.parquet as pq
+
+    w = write_panel(tmp_path, SimulationSpec(markets=6, periods=8, seed=1), layout="files")
+    target = sorted((w.root / "parts").glob("*.parquet"))[1]
+    # no statistics, so markets are read from the column itself, whose pages are garbage
+    pq.write_table(pq.read_table(target), target, write_statistics=False)
+    meta = pq.read_metadata(target)
+    names = [meta.schema.column(j).path for j in range(meta.num_columns)]
+    col = meta.row_group(0).column(names.index(SPEC.market_column))
+    raw = bytearray(target.read_bytes())
+    raw[col.data_page_offset:col.data_page_offset + col.total_compressed_size] = (
+        b"\xff" * col.total_compressed_size)
+    target.write_bytes(bytes(raw))
+    for command in ("check", "estimate"):
+        res = _cli(capsys, command, w.parted)
+        assert res.code == 2, res.err
+        assert target.name in res.err and SPEC.market_column in res.err, res.err
+
+
+@pytest.mark.skipif(not HAVE_DISTRIBUTED, reason="dask.distributed is not installed")
+def test_scheduler_without_workers_is_refused(small: Written,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    import distributed
+
+    from conduct import executor
+    from conduct.errors import ConductError
+
+    monkeypatch.setattr(executor, "_DASK_TIMEOUT", 1)
+    cluster = distributed.LocalCluster(n_workers=0, processes=False, host="127.0.0.1",
+                                       protocol="tcp", dashboard_address=":0")
+    try:
+        with pytest.raises(ConductError, match="has no workers"):
+            estimate_partitioned(small.parted, scheduler=cluster.scheduler_address)
+    finally:
+        cluster.close()
