@@ -31,14 +31,20 @@ def dense_codes(values: np.ndarray) -> np.ndarray:
 
     Parameters
     ----------
-    values : numpy.ndarray
-        (n,) labels of any sortable type.
+    values : numpy.ndarray or pandas.Series
+        (n,) labels of any sortable type.  A Series of text (e.g. Arrow-backed
+        strings) is coded by hashing its own array, without a copy to Python objects.
 
     Returns
     -------
     numpy.ndarray
         (n,) int64 codes; equal to ``np.unique(values, return_inverse=True)[1]``.
     """
+    if isinstance(values, pd.Series) and not pd.api.types.is_numeric_dtype(values.dtype) \
+            and not pd.api.types.is_bool_dtype(values.dtype):
+        coded = pd.factorize(values, sort=True)[0]
+        if coded.size and int(coded.min()) >= 0:
+            return coded.astype(np.int64, copy=False)
     values = np.asarray(values)
     if values.size == 0:
         return np.zeros(0, dtype=np.int64)

@@ -81,8 +81,8 @@ def derive(panel: Panel, study: Study, demand: DemandResult,
     p = f[study.panel.price].to_numpy(dtype=float)
     q = f[study.panel.quantity].to_numpy(dtype=float)
     obs = pd.DataFrame({
-        "market": f[MARKET].to_numpy(),
-        "period": f[PERIOD].to_numpy(),
+        "market": f[MARKET].array,  # the panel's own arrays: no round trip through objects
+        "period": f[PERIOD].array,
         "price": p,
         "quantity": q,
         "slope": demand.slope,
@@ -112,7 +112,7 @@ def derive(panel: Panel, study: Study, demand: DemandResult,
     valid = np.isfinite(qstar)
     tables = {}
     for key, col in (("period", TIME), ("market", MARKET)):
-        group_codes = codes(f[col].to_numpy())
+        group_codes = codes(f[col])
         labels = (f.drop_duplicates(col).sort_values(col)[PERIOD if key == "period" else MARKET]
                   .astype(str).tolist())
         tables[key] = _group_means(p, q, demand, supply, variants, group_codes, labels,

@@ -55,7 +55,7 @@ class Prepared:
 
 def codes(values: pd.Series | np.ndarray) -> np.ndarray:
     """Integer codes 0..G-1 of the distinct values, in sorted order."""
-    return dense_codes(np.asarray(values))
+    return dense_codes(values)
 
 
 def _nested(groups: np.ndarray, clusters: np.ndarray) -> bool:
@@ -97,8 +97,7 @@ def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand",
         if known is not None and name in known:
             c = known[name]
         else:
-            c = codes(frame[col].astype(str).to_numpy() if col not in (MARKET, TIME)
-                      else frame[col].to_numpy())
+            c = codes(frame[col].astype(str) if col not in (MARKET, TIME) else frame[col])
         if int(c.max()) + 1 < 2:
             if name == "market":
                 raise EstimationError(
@@ -138,7 +137,7 @@ def prepare(
     Prepared
     """
     effects = study.demand.effects
-    markets = codes(frame[MARKET].to_numpy())
+    markets = codes(frame[MARKET])
     periods = codes(frame[TIME].to_numpy())
     groups = [g for name, g in (("market", markets), ("period", periods)) if name in effects]
     n_m, n_t = int(markets.max()) + 1, int(periods.max()) + 1

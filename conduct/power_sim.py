@@ -187,7 +187,7 @@ def estimated_structure(panel: Panel, study: Study, demand: DemandResult,
         h=supply.h,
         demand_shock=e * _dof_scale(demand.fit, demand.prepared),
         cost_shock=u * _dof_scale(fit, supply.prepared),
-        markets=codes(f[MARKET].to_numpy()),
+        markets=codes(f[MARKET]),
         periods=codes(f[TIME].to_numpy()),
         observed_price=p,
     )

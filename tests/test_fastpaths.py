@@ -257,3 +257,14 @@ def test_replicate_kernel_hands_ill_conditioned_resamples_to_the_full_path(tmp_p
         bootstrap.one_replicate = real  # type: ignore[assignment]
     assert calls == [(3, 1)]
     assert theta == real(panel, study, 3, 1)
+
+
+@pytest.mark.parametrize("dtype", ["string[pyarrow]", "object", "str"])
+def test_dense_codes_of_a_text_series_equal_numpy_unique(dtype: str) -> None:
+    import pandas as pd
+
+    rng = np.random.default_rng(12)
+    labels = [f"m{v}" for v in rng.integers(0, 300, 3_000)] + [
+        "Zürich", "zebra", "Ärger", "éa", "ab c", "AB", "数量"]  # code-point order matters
+    expected = np.unique(np.asarray(labels, dtype=object), return_inverse=True)[1]
+    np.testing.assert_array_equal(dense_codes(pd.Series(labels, dtype=dtype)), expected)
