@@ -656,7 +656,11 @@ def check_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
 
 
 def condition_number(a: np.ndarray) -> float:
-    """Condition number of ``a`` after scaling each column to unit root-mean-square."""
+    """Condition number of ``a`` after scaling each column to unit root-mean-square.
+
+    The singular values come from the QR factor R (those of the (n, k) matrix, at
+    O(n k^2) cost); scaling the columns of ``a`` scales those of R (a D^-1 = Q R D^-1).
+    """
     if a.shape[1] == 0:
         return 1.0
     scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
@@ -676,10 +680,7 @@ def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
             f"The {what} include '{label}', which has no variation left after the fixed "
             "effects are removed; drop it or change the effects."
         )
-    # QR first: the singular values of R equal those of the (n, k) matrix, at O(n k^2)
-    # cost; scaling the columns of a scales those of R (a D^-1 = Q R D^-1)
-    s = np.linalg.svd(np.linalg.qr(a, mode="r") / scale, compute_uv=False)
-    cond = s[0] / s[-1] if s[-1] > 0 else np.inf
+    cond = condition_number(a)
     if cond > 1e10:
         raise EstimationError(
             f"The {what} are collinear (condition number {cond:.3g} after scaling): "

@@ -319,8 +319,8 @@ def build_system(
             + "; the supply relation cannot be estimated. Check the demand specification."
         )
     fs = f.iloc[rows].reset_index(drop=True)
-    p = fs[study.panel.price].to_numpy(dtype=float)
-    q = fs[study.panel.quantity].to_numpy(dtype=float)
+    data, raw = supply_columns(fs, study)
+    p, q = data["_p"], data["Q"]
     slope = demand.slope[rows]
     qstar = -q / slope
     dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]  # (n_s, k_d)
@@ -335,7 +335,6 @@ def build_system(
     n_groups = len(labels)
 
     base_instr = supply_instruments(study)
-    data, raw = supply_columns(fs, study)
     if n_groups == 1:
         qnames = [QSTAR]
         data[QSTAR] = qstar
