@@ -20,6 +20,7 @@ from typing import Any
 
 from conduct import __version__
 from conduct.errors import ConductError
+from conduct.heap import keep_freed_memory
 
 __all__ = ["main"]
 
@@ -366,6 +367,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         0 done, 1 internal error, 2 user error, 3 alert met.
     """
     args_list = list(sys.argv[1:] if argv is None else argv)
+    keep_freed_memory()
     parser = _parser()
     try:
         args = parser.parse_args(args_list)

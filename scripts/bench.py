@@ -64,6 +64,7 @@ import pandas as pd
 from conduct.bootstrap import one_replicate, replicate_kernel
 from conduct.demand import estimate_demand
 from conduct.derived import derive
+from conduct.heap import keep_freed_memory
 from conduct.identify import check_identification
 from conduct.panel import load_panel
 from conduct.pipeline import estimate
@@ -461,8 +462,10 @@ def _peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / scale
 
 
-def _measure_in_child(kind: str, study_path: str) -> dict[str, float]:
+def _measure_in_child(kind: str, study_path: str, keep_memory: bool) -> dict[str, float]:
     """Run one measurement in this (fresh) process and report its peak RSS."""
+    if keep_memory:
+        keep_freed_memory()
     gc.collect()
     start = _status_mb("VmRSS") or _peak_mb()
     _reset_peak()
@@ -476,13 +479,15 @@ def _measure_in_child(kind: str, study_path: str) -> dict[str, float]:
     return {"start_mb": start, "peak_mb": _peak_mb()}
 
 
-def peak_memory(kind: str, study_path: Path) -> dict[str, float]:
+def peak_memory(kind: str, study_path: Path, keep_memory: bool = True) -> dict[str, float]:
     """Peak RSS of one measurement in a freshly spawned process.
 
     Parameters
     ----------
     kind : {"full", "baseline", "replicate"}
     study_path : Path
+    keep_memory : bool
+        Apply :func:`conduct.heap.keep_freed_memory` in that process first.
 
     Returns
     -------
@@ -491,7 +496,7 @@ def peak_memory(kind: str, study_path: Path) -> dict[str, float]:
     """
     ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(max_workers=1, mp_context=ctx) as pool:
-        out = pool.submit(_measure_in_child, kind, str(study_path)).result()
+        out = pool.submit(_measure_in_child, kind, str(study_path), keep_memory).result()
     out["added_mb"] = out["peak_mb"] - out["start_mb"]
     return out
 
@@ -640,7 +645,7 @@ def measure_size(rows: int, args: argparse.Namespace, workdir: Path,
         done(f"bootstrap replicate {out['replicate_s']:.2f} s")
         if not args.no_memory:
             step = "the baseline's peak-memory run"
-            out["baseline_memory"] = peak_memory("baseline", study_path)
+            out["baseline_memory"] = peak_memory("baseline", study_path, not args.malloc_default)
             done(f"peak RSS baseline {out['baseline_memory']['peak_mb']:.0f} MB")
 
         def on_stage(name: str, secs: float, peak: float | None) -> None:
@@ -658,7 +663,7 @@ def measure_size(rows: int, args: argparse.Namespace, workdir: Path,
         done(f"full estimate {full_s:.2f} s")
         if not args.no_memory:
             step = "the full estimate's peak-memory run"
-            out["full_memory"] = peak_memory("full", study_path)
+            out["full_memory"] = peak_memory("full", study_path, not args.malloc_default)
             done(f"peak RSS full {out['full_memory']['peak_mb']:.0f} MB")
         if rows <= args.power_max_rows:
             step = "the power analysis"
@@ -682,6 +687,8 @@ def _log(args: argparse.Namespace, text: str) -> None:
 
 def _size_in_child(rows: int, args: argparse.Namespace, workdir: str) -> dict[str, Any]:
     """Child-process body: cap the address space, warm up, measure one size."""
+    if not args.malloc_default:
+        keep_freed_memory()  # as the command line does; baseline and full alike
     limit = int(args.mem_limit_gb * 1024**3)
     with contextlib.suppress(ValueError, OSError):
         resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
@@ -758,6 +765,9 @@ def text_report(results: list[dict[str, Any]], args: argparse.Namespace) -> str:
         f"data: {DATA_NOTE}",
         f"time: best of {args.repeat} run(s), wall clock; memory: peak RSS (VmHWM) of a fresh "
         "process per measurement (+MB = peak minus RSS after imports)",
+        "malloc: " + ("glibc defaults (--malloc-default)" if args.malloc_default else
+                      "freed memory kept for reuse (conduct.heap, as the command line does) "
+                      "in every measuring process, baseline and full alike"),
         "",
         f"{'rows':>10} {'shape':>10} | {'full s':>8} {'base s':>8} {'ratio':>6} "
         f"{'<=3':>4} | {'exp full':>8} {'exp base':>8} {'<=1.1':>5} | "
@@ -850,6 +860,9 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
                    help="simulated panels per model when timing the power analysis")
     p.add_argument("--power-max-rows", type=_size, default=100_000,
                    help="time the power analysis up to this size")
+    p.add_argument("--malloc-default", action="store_true",
+                   help="leave glibc malloc at its defaults (the command line and, by default, "
+                        "every measuring process here keep freed memory for reuse)")
     p.add_argument("--no-memory", action="store_true", help="skip peak-memory processes")
     p.add_argument("--seed", type=int, default=1, help="simulation seed")
     p.add_argument("--workdir", type=Path,

@@ -12,7 +12,7 @@ from pathlib import Path
 PACKAGE = Path(__file__).resolve().parent.parent / "conduct"
 
 ORDER = [
-    "errors", "progress", "executor", "schema", "study_data", "study", "tableio",
+    "errors", "heap", "progress", "executor", "schema", "study_data", "study", "tableio",
     "derive_ops", "firms", "coverage", "assemble", "panel", "parquet_dataset", "absorb", "iv",
     "crossprod", "weakiv", "stockyogo", "diagnostics", "design", "demand", "identify", "supply",
     "partitioned_result", "partitioned", "menu_stats",
