@@ -231,6 +231,61 @@ def ls_coef(a: np.ndarray, b: np.ndarray, max_cond: float = GRAM_COND) -> np.nda
     return np.linalg.lstsq(a, b, rcond=None)[0]
 
 
+R_GRAM_COND = 1e8  # scaled cross-product condition up to which R comes from its Cholesky factor
+
+
+def r_factor(a: np.ndarray) -> np.ndarray:
+    """The R factor of a thin QR of ``a``, with a non-negative diagonal.
+
+    For a well-conditioned ``a`` (scaled cross-product condition below
+    ``R_GRAM_COND``, i.e. condition of ``a`` below 1e4 after scaling) R is the
+    Cholesky factor of ``a'a``, which is the QR's R with a positive diagonal
+    (one pass over the rows instead of Householder reflections); otherwise it
+    comes from :func:`numpy.linalg.qr`, with the signs of its rows made to
+    agree.  Tests keep both routes equal.
+
+    Parameters
+    ----------
+    a : numpy.ndarray
+        (n, k) with n >= k.
+
+    Returns
+    -------
+    numpy.ndarray
+        (k, k) upper triangular.
+    """
+    k = a.shape[1]
+    if k == 0:
+        return np.zeros((0, 0))
+    scale = np.sqrt(np.einsum("ij,ij->j", a, a))
+    if np.all(scale > 0) and np.all(np.isfinite(scale)):
+        gram = (a.T @ a) / np.outer(scale, scale)
+        vals = np.linalg.eigvalsh(gram)
+        if vals[0] > 0 and vals[-1] / vals[0] < R_GRAM_COND:
+            return np.linalg.cholesky(gram).T * scale
+    r = np.linalg.qr(a, mode="r")
+    return r * np.where(np.diag(r) < 0, -1.0, 1.0)[:, None]
+
+
+def orthonormal_basis(a: np.ndarray, r: np.ndarray | None = None) -> np.ndarray:
+    """An (n, k) matrix with orthonormal columns spanning the full-rank ``a``.
+
+    ``a R^-1`` with R from :func:`r_factor` when ``a`` has condition below 1e3
+    after scaling its columns (loss of orthogonality about ``1e-16 cond^2``), else
+    the Q of :func:`numpy.linalg.qr` (the same basis up to column signs).  ``r``
+    may pass ``r_factor(a)`` when already computed.
+    """
+    if a.shape[1] == 0:
+        return np.zeros((a.shape[0], 0))
+    if r is None:
+        r = r_factor(a)
+    scale = np.sqrt(np.sum(r * r, axis=0))  # column norms of a
+    sv = np.linalg.svd(r / np.where(scale > 0, scale, 1.0), compute_uv=False)
+    if sv[-1] > 0 and sv[0] / sv[-1] < 1e3:
+        return a @ np.linalg.inv(r)
+    return np.linalg.qr(a)[0]
+
+
 def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.ndarray:
     """``target[rows] += values`` in place, without fancy indexing when ``rows`` is every row.
 
@@ -659,13 +714,14 @@ def condition_number(a: np.ndarray) -> float:
     """Condition number of ``a`` after scaling each column to unit root-mean-square.
 
     The singular values come from the QR factor R (those of the (n, k) matrix, at
-    O(n k^2) cost); scaling the columns of ``a`` scales those of R (a D^-1 = Q R D^-1).
+    O(n k^2) cost; see :func:`r_factor`); scaling the columns of ``a`` scales those
+    of R (a D^-1 = Q R D^-1).
     """
     if a.shape[1] == 0:
         return 1.0
     scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
     scale = np.where(scale > 0, scale, 1.0)
-    sv = np.linalg.svd(np.linalg.qr(a, mode="r") / scale, compute_uv=False)
+    sv = np.linalg.svd(r_factor(a) / scale, compute_uv=False)
     return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 

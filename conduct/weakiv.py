@@ -36,7 +36,7 @@ from scipy import optimize, stats
 
 from conduct.absorb import dense_codes
 from conduct.errors import EstimationError, IdentificationError
-from conduct.iv import group_sums, ls_coef
+from conduct.iv import group_sums, ls_coef, orthonormal_basis, r_factor
 
 __all__ = [
     "ARSet",
@@ -320,10 +320,16 @@ def _residualise(W: np.ndarray, *arrays: np.ndarray) -> tuple[int, list[np.ndarr
     if W.shape[1] == 0:
         return 0, [a.copy() for a in arrays]
     # singular vectors of W from those of its QR factor R (k x k): same s, O(n k^2)
-    q, r = np.linalg.qr(W)
+    r = r_factor(W)
     u_r, s, _ = np.linalg.svd(r)
     tol = s.max() * max(W.shape) * np.finfo(float).eps if s.size else 0.0
-    U = q @ u_r[:, s > tol]
+    keep = s > tol
+    if keep.all():
+        U = orthonormal_basis(W, r)
+    else:
+        q, r = np.linalg.qr(W)
+        u_r, s, _ = np.linalg.svd(r)
+        U = q @ u_r[:, s > tol]
     return U.shape[1], [a - U @ (U.T @ a) for a in arrays]
 
 
@@ -350,7 +356,7 @@ def _design(
         raise EstimationError(f"df_absorbed must be non-negative, got {df_absorbed}")
     w, parts = _residualise(W, Z, *arrays)
     Zt = parts[0]
-    sv = np.linalg.svd(np.linalg.qr(Zt, mode="r"), compute_uv=False)  # = those of Zt
+    sv = np.linalg.svd(r_factor(Zt), compute_uv=False)  # = those of Zt
     if sv.size == 0 or sv.min() <= sv.max() * max(Zt.shape) * np.finfo(float).eps * 10:
         raise EstimationError(
             "the excluded instruments are collinear among themselves or with the "
@@ -698,8 +704,7 @@ def effective_f(
     omega = _meat(d, resid)
     # the Cholesky factor of Z'Z from a QR of Z: stable when the instruments are nearly
     # collinear, where forming Z'Z first loses half the digits
-    r = np.linalg.qr(d.Z, mode="r")
-    L = (r * np.where(np.diag(r) < 0, -1.0, 1.0)[:, None]).T
+    L = r_factor(d.Z).T
     S = sla.solve_triangular(L, sla.solve_triangular(L, omega, lower=True).T, lower=True)
     S = (S + S.T) / 2
     eig = np.linalg.eigvalsh(S)
@@ -752,7 +757,7 @@ def _ar_parts(
     )
     if yt.shape[1] != 1 or xt.shape[1] != 1:
         raise EstimationError("the Anderson-Rubin functions take one y and one endogenous x")
-    Q, _ = np.linalg.qr(d.Z)
+    Q = orthonormal_basis(d.Z)
     # The AR statistic is invariant to a nonsingular recombination of the instruments.
     d = _Design(
         Z=Q,

@@ -268,3 +268,47 @@ def test_dense_codes_of_a_text_series_equal_numpy_unique(dtype: str) -> None:
         "Zürich", "zebra", "Ärger", "éa", "ab c", "AB", "数量"]  # code-point order matters
     expected = np.unique(np.asarray(labels, dtype=object), return_inverse=True)[1]
     np.testing.assert_array_equal(dense_codes(pd.Series(labels, dtype=dtype)), expected)
+
+
+def _design_matrix(case: str) -> np.ndarray:
+    rng = np.random.default_rng(11)
+    a = rng.normal(size=(3_000, 5))
+    if case == "badly-scaled":
+        a *= np.array([1e-6, 1.0, 1e3, 1e6, 7.0])
+    elif case == "nearly-collinear":  # condition about 1e6: the Householder route
+        a[:, 4] = a[:, 0] + a[:, 1] + 1e-6 * a[:, 4]
+    return a
+
+
+@pytest.mark.parametrize("case", ["plain", "badly-scaled", "nearly-collinear"])
+def test_r_factor_equals_householder_qr(case: str) -> None:
+    from conduct.iv import r_factor
+    a = _design_matrix(case)
+    ref = np.linalg.qr(a, mode="r")  # numpy's LAPACK Householder QR
+    ref = ref * np.where(np.diag(ref) < 0, -1.0, 1.0)[:, None]
+    got = r_factor(a)
+    assert np.all(np.diag(got) > 0)
+    # rows of R scale with the column norms; compare relative to them
+    np.testing.assert_allclose(got / np.linalg.norm(a, axis=0), ref / np.linalg.norm(a, axis=0),
+                               rtol=0, atol=1e-10)
+    np.testing.assert_allclose(got.T @ got, a.T @ a, rtol=1e-10,
+                               atol=1e-12 * float(np.abs(a.T @ a).max()))
+
+
+@pytest.mark.parametrize("case", ["plain", "badly-scaled", "nearly-collinear"])
+def test_orthonormal_basis_spans_the_columns(case: str) -> None:
+    from conduct.iv import orthonormal_basis
+    a = _design_matrix(case)
+    q = orthonormal_basis(a)
+    np.testing.assert_allclose(q.T @ q, np.eye(a.shape[1]), atol=1e-12)
+    ref = np.linalg.qr(a)[0]
+    y = np.random.default_rng(3).normal(size=len(a))
+    np.testing.assert_allclose(q @ (q.T @ y), ref @ (ref.T @ y), atol=1e-10)
+
+
+@pytest.mark.parametrize("case", ["plain", "badly-scaled", "nearly-collinear"])
+def test_condition_number_equals_the_svd_of_the_scaled_matrix(case: str) -> None:
+    from conduct.iv import condition_number
+    a = _design_matrix(case)
+    sv = np.linalg.svd(a / np.sqrt(np.mean(a * a, axis=0)), compute_uv=False)
+    assert condition_number(a) == pytest.approx(sv[0] / sv[-1], rel=1e-8)
