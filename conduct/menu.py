@@ -216,10 +216,14 @@ def _column(frame: pd.DataFrame, name: str, where: str) -> np.ndarray:
     )
 
 
-def _residualise(x: np.ndarray, w: np.ndarray) -> np.ndarray:
+def _residualise(cols: dict[str, np.ndarray], w: np.ndarray) -> dict[str, np.ndarray]:
+    """Each column less its least-squares fit on ``w`` (one cross-product of ``w``)."""
     if w.shape[1] == 0:
-        return x
-    return x - w @ ls_coef(w, x)
+        return cols
+    keys = list(cols)
+    b = np.column_stack([cols[k] for k in keys])
+    b -= w @ ls_coef(w, b)
+    return {k: b[:, i] for i, k in enumerate(keys)}
 
 
 def menu_test(
@@ -279,10 +283,12 @@ def menu_test(
     f = panel.frame
     n_all = len(f)
     rows = supply.rows
-    fs = f.iloc[rows].reset_index(drop=True)
     n = len(rows)
-    p = fs[study.panel.price].to_numpy(dtype=float)
-    q = fs[study.panel.quantity].to_numpy(dtype=float)
+    every_row = n == n_all
+    p = f[study.panel.price].to_numpy(dtype=float)
+    q = f[study.panel.quantity].to_numpy(dtype=float)
+    if not every_row:
+        p, q = p[rows], q[rows]
     qstar = supply.qstar[rows]
     slope = demand.slope[rows]
     dqstar = (q / slope**2)[:, None] * demand.slope_grad[rows]
@@ -310,22 +316,39 @@ def menu_test(
         )
 
     sets = dict(instrument_sets) if instrument_sets else {DEFAULT_SET: supply.instruments}
-    data: dict[str, np.ndarray] = {"_p": p, "_q": q}
-    for c in s.cost_shifters:
-        data[c] = fs[c].to_numpy(dtype=float)
     for name, instr in sets.items():
         if not instr:
             raise EstimationError(f"Menu test: instrument set '{name}' is empty.")
-        for col in instr:
-            data.setdefault(f"_z:{col}", _column(fs, col, f"instrument set '{name}'"))
-    for m in models:
-        data[f"_m:{m}"] = markups[m]
-    prep = prepare(fs, data, study, stage="supply")
-    cols = prep.columns
+    # Columns with the fixed effects absorbed: the supply stage's own (same rows, same
+    # effects) where it has them (its ``_dep:<model>`` is ``P - markup``), else absorbed here.
+    have = supply.prepared.columns
+    wanted = {"_p": "_p", "_q": "Q", **{c: c for c in s.cost_shifters},
+              **{f"_e:{m}": f"_dep:{m}" for m in models},
+              **{f"_z:{col}": col for instr in sets.values() for col in instr}}
+    cols = {key: have[src] for key, src in wanted.items() if src in have}
+    missing = [key for key in wanted if key not in cols]
+    prep = supply.prepared
+    if missing:
+        fs = f.iloc[rows].reset_index(drop=True)
+        raw: dict[str, np.ndarray] = {}
+        for key in missing:
+            if key == "_p":
+                raw[key] = p
+            elif key == "_q":
+                raw[key] = q
+            elif key.startswith("_e:"):
+                raw[key] = p - markups[key[3:]]
+            elif key.startswith("_z:"):
+                where = next(nm for nm, instr in sets.items() if key[3:] in instr)
+                raw[key] = _column(fs, key[3:], f"instrument set '{where}'")
+            else:
+                raw[key] = fs[key].to_numpy(dtype=float)
+        prep = prepare(fs, raw, study, stage="supply")
+        cols.update(prep.columns)
     w = np.column_stack(([np.ones(n)] if prep.constant else [])
                         + [cols[c] for c in s.cost_shifters]) if (
         prep.constant or s.cost_shifters) else np.zeros((n, 0))
-    resid = {k: _residualise(v, w) for k, v in cols.items() if k not in s.cost_shifters}
+    resid = _residualise({k: v for k, v in cols.items() if k not in s.cost_shifters}, w)
     k_small = w.shape[1] + (1 if s.cost_slope else 0)
     c1, c2 = ((supply.full_cov.clusters, supply.full_cov.clusters2)
               if prep.cov.kind == "cluster" else (None, None))
@@ -338,7 +361,7 @@ def menu_test(
     for name, instr in sets.items():
         what = f"instruments of the menu test ('{name}': {', '.join(instr)})"
         z = np.column_stack([resid[f"_z:{col}"] for col in instr])
-        errors = {m: resid["_p"] - resid[f"_m:{m}"] for m in models}
+        errors = {m: resid[f"_e:{m}"] for m in models}
         if s.cost_slope:
             z, errors = _concentrate_slope(z, resid["_q"], errors, name)
         zw = orthonormal(z, what=what)
