@@ -26,7 +26,7 @@ from conduct.panel import Panel, load_panel
 from conduct.regimes import RegimeShiftResult, SplitResult, regime_shift, theta_by
 from conduct.study import Study, load_study
 from conduct.supply import SupplyResult, estimate_supply
-from conduct.thetaset import ThetaSet, candidate_ar_tests, theta_ar_set
+from conduct.thetaset import ThetaSet, ar_inference
 
 __all__ = ["Results", "estimate"]
 
@@ -228,9 +228,8 @@ def estimate(study: Study | str | Path, *, quiet: bool = True, workers: int | No
             menu = menu_test(panel, st, demand, supply, instrument_sets=sets)
         except ConductError as exc:
             menu_note = f"Menu test not run: {exc}"
-    theta_set = theta_ar_set(panel, st, demand, supply) if supply is not None else None
-    candidate_ar = (candidate_ar_tests(panel, st, demand, supply)
-                    if supply is not None else {})
+    theta_set, candidate_ar = (ar_inference(panel, st, demand, supply)
+                               if supply is not None else (None, {}))
     regimes = groups = breaks = rolling = None
     if supply is not None and st.supply is not None:
         if st.supply.regimes:

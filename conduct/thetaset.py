@@ -33,7 +33,7 @@ from conduct.panel import Panel
 from conduct.study import Study
 from conduct.supply import QSTAR, SupplyResult, benchmark_h
 
-__all__ = ["ThetaSet", "candidate_ar_tests", "theta_ar_set"]
+__all__ = ["ThetaSet", "ar_inference", "candidate_ar_tests", "theta_ar_set"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -148,6 +148,7 @@ class _Linear:
         pi1, sums1 = sh.reduced(y1, sh.psi_d @ g_alpha.T)
         (pi0, sums0), (pi2, sums2) = sh.common["p"], sh.common["q"]
         self.pi = [pi0, pi1, pi2]
+        self.shared = sh
         self.kz, self.kr, self.nuisance = sh.kz, sh.kr, sh.nuisance
         self.terms = [(factor / sh.n_all**2, [s0, s1, s2]) for (_, factor), s0, s1, s2
                       in zip(sh.terms, sums0, sums1, sums2, strict=True)]
@@ -184,7 +185,10 @@ def theta_ar_set(panel: Panel, study: Study, demand: DemandResult, supply: Suppl
     -------
     ThetaSet
     """
-    lin = _Linear(_Shared(panel, study, demand, supply))
+    return _invert(_Linear(_Shared(panel, study, demand, supply)), study, supply, grid_points)
+
+
+def _invert(lin: _Linear, study: Study, supply: SupplyResult, grid_points: int) -> ThetaSet:
     level = study.inference.level
     df = lin.kz - (1 if lin.nuisance else 0)
     crit = float(stats.chi2.ppf(level, df))
@@ -236,17 +240,56 @@ def candidate_ar_tests(panel: Panel, study: Study, demand: DemandResult,
     dict
         Candidate name -> (statistic, degrees of freedom, p-value).
     """
+    return _candidates(None, panel, study, demand, supply)
+
+
+def _candidates(lin: _Linear | None, panel: Panel, study: Study, demand: DemandResult,
+                supply: SupplyResult) -> dict[str, tuple[float, int, float]]:
+    """Candidate AR tests; a fixed-theta candidate is the theta-set statistic at its theta.
+
+    With markup ``theta_m Q*`` the candidate's linear pieces are ``theta_m`` times those
+    of the set's ``-Q*`` term, so its statistic is ``lin.profile(theta_m)``; only a
+    markup varying across rows (Cournot's ``H Q*``) needs its own reduced form.
+    """
     h_all = benchmark_h(panel, study)
     out: dict[str, tuple[float, int, float]] = {}
     n = len(panel.frame)
-    shared: _Shared | None = None
+    shared: _Shared | None = lin.shared if lin is not None else None
     for c in study.candidates:
         h = np.full(n, c.theta) if c.theta is not None else h_all
         if h is None or f"_dep:{c.name}" not in supply.prepared.columns:
             continue
         shared = shared or _Shared(panel, study, demand, supply)
-        lin = _Linear(shared, markup=(supply.prepared.columns[f"_dep:{c.name}"], h))
-        df = lin.kz - (1 if lin.nuisance else 0)
-        stat = lin.profile(1.0)
+        if c.theta is not None:
+            lin = lin or _Linear(shared)
+            lin_c, at = lin, float(c.theta)
+        else:
+            lin_c = _Linear(shared, markup=(supply.prepared.columns[f"_dep:{c.name}"], h))
+            at = 1.0
+        df = lin_c.kz - (1 if lin_c.nuisance else 0)
+        stat = lin_c.profile(at)
         out[c.name] = (stat, df, float(stats.chi2.sf(stat, df)))
     return out
+
+
+def ar_inference(panel: Panel, study: Study, demand: DemandResult, supply: SupplyResult,
+                 *, grid_points: int = 401
+                 ) -> tuple[ThetaSet, dict[str, tuple[float, int, float]]]:
+    """The Anderson-Rubin set for theta and the candidates' AR tests, sharing their parts.
+
+    Equals ``(theta_ar_set(...), candidate_ar_tests(...))``.
+
+    Parameters
+    ----------
+    panel, study, demand, supply
+        The fitted stages.
+    grid_points : int
+        Grid size of the set's search.
+
+    Returns
+    -------
+    (ThetaSet, dict)
+    """
+    lin = _Linear(_Shared(panel, study, demand, supply))
+    return (_invert(lin, study, supply, grid_points),
+            _candidates(lin, panel, study, demand, supply))

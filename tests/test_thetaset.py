@@ -32,10 +32,16 @@ def test_set_contains_estimate_and_endpoints_sit_on_the_critical_value(res):
 
 
 def test_candidate_ar_equals_set_statistic_at_fixed_theta(res):
-    lin = _Linear(_Shared(res.panel, res.study, res.demand, res.supply))
+    # A fixed-theta candidate's statistic is taken as the set's statistic at its theta;
+    # the candidate's own reduced form (y = P - theta Q*, absorbed on its own, with its own
+    # generated-regressor term) must give the same number.
+    shared = _Shared(res.panel, res.study, res.demand, res.supply)
+    n = len(res.panel.frame)
     for name, theta in (("competitive", 0.0), ("collusive", 1.0)):
         stat, df, p = res.candidate_ar[name]
-        assert stat == pytest.approx(lin.profile(theta), rel=1e-9)
+        own = _Linear(shared, markup=(res.supply.prepared.columns[f"_dep:{name}"],
+                                      np.full(n, theta)))
+        assert stat == pytest.approx(own.profile(1.0), rel=1e-9)
         assert p == pytest.approx(stats.chi2.sf(stat, df), rel=1e-12)
     # Cournot's markup varies with H by row; its AR statistic is still finite
     assert np.isfinite(res.candidate_ar["cournot"][0])
