@@ -220,9 +220,10 @@ def ls_coef(a: np.ndarray, b: np.ndarray, max_cond: float = GRAM_COND) -> np.nda
     """
     if a.shape[1] == 0:
         return np.zeros((0, *b.shape[1:]))
-    scale = np.sqrt(np.einsum("ij,ij->j", a, a))
+    raw = a.T @ a
+    scale = np.sqrt(np.diag(raw))
     if np.all(scale > 0):
-        gram = (a.T @ a) / np.outer(scale, scale)
+        gram = raw / np.outer(scale, scale)
         vals = np.linalg.eigvalsh(gram)
         if vals[0] > 0 and vals[-1] / vals[0] < max_cond:
             rhs = (a.T @ b) / (scale[:, None] if b.ndim == 2 else scale)
@@ -257,9 +258,10 @@ def r_factor(a: np.ndarray) -> np.ndarray:
     k = a.shape[1]
     if k == 0:
         return np.zeros((0, 0))
-    scale = np.sqrt(np.einsum("ij,ij->j", a, a))
+    raw = a.T @ a
+    scale = np.sqrt(np.diag(raw))
     if np.all(scale > 0) and np.all(np.isfinite(scale)):
-        gram = (a.T @ a) / np.outer(scale, scale)
+        gram = raw / np.outer(scale, scale)
         vals = np.linalg.eigvalsh(gram)
         if vals[0] > 0 and vals[-1] / vals[0] < R_GRAM_COND:
             return np.linalg.cholesky(gram).T * scale
@@ -279,9 +281,7 @@ def orthonormal_basis(a: np.ndarray, r: np.ndarray | None = None) -> np.ndarray:
         return np.zeros((a.shape[0], 0))
     if r is None:
         r = r_factor(a)
-    scale = np.sqrt(np.sum(r * r, axis=0))  # column norms of a
-    sv = np.linalg.svd(r / np.where(scale > 0, scale, 1.0), compute_uv=False)
-    if sv[-1] > 0 and sv[0] / sv[-1] < 1e3:
+    if _r_condition(r) < 1e3:
         return a @ np.linalg.inv(r)
     return np.linalg.qr(a)[0]
 
@@ -715,20 +715,24 @@ def condition_number(a: np.ndarray) -> float:
 
     The singular values come from the QR factor R (those of the (n, k) matrix, at
     O(n k^2) cost; see :func:`r_factor`); scaling the columns of ``a`` scales those
-    of R (a D^-1 = Q R D^-1).
+    of R (a D^-1 = Q R D^-1), and R's column norms are those of ``a``.
     """
     if a.shape[1] == 0:
         return 1.0
-    scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
-    scale = np.where(scale > 0, scale, 1.0)
-    sv = np.linalg.svd(r_factor(a) / scale, compute_uv=False)
+    return _r_condition(r_factor(a))
+
+
+def _r_condition(r: np.ndarray) -> float:
+    scale = np.sqrt(np.sum(r * r, axis=0))
+    sv = np.linalg.svd(r / np.where(scale > 0, scale, 1.0), compute_uv=False)
     return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 
 def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
     if a.shape[1] == 0:
         return
-    scale = np.sqrt(np.einsum("ij,ij->j", a, a) / a.shape[0])
+    r = r_factor(a)
+    scale = np.sqrt(np.sum(r * r, axis=0) / a.shape[0])  # root-mean-square of each column
     zero = np.flatnonzero(scale < 1e-12 * max(1.0, float(scale.max())))
     if len(zero):
         label = names[zero[0]] if zero[0] < len(names) else f"column {zero[0] + 1}"
@@ -736,7 +740,7 @@ def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
             f"The {what} include '{label}', which has no variation left after the fixed "
             "effects are removed; drop it or change the effects."
         )
-    cond = condition_number(a)
+    cond = _r_condition(r)
     if cond > 1e10:
         raise EstimationError(
             f"The {what} are collinear (condition number {cond:.3g} after scaling): "
