@@ -22,6 +22,7 @@ parameters (including the intercept they absorb).
 from __future__ import annotations
 
 import warnings
+import weakref
 from dataclasses import dataclass, replace
 from typing import Any, Literal
 
@@ -299,15 +300,39 @@ def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.nda
     return target
 
 
-def group_sums(codes: np.ndarray, a: np.ndarray) -> np.ndarray:
-    """Column sums of ``a`` (n, p) within each code 0..G-1, as a (G, p) array."""
+_RUNS: dict[int, tuple[weakref.ref[np.ndarray], int, np.ndarray | None]] = {}
+
+
+def _runs(codes: np.ndarray) -> tuple[int, np.ndarray | None]:
+    """Number of groups and, when rows are sorted by group, where each group's run starts.
+
+    Remembered for read-only arrays (the cluster codes of a stage, made read-only
+    when built), which cannot change under the cache.
+    """
+    key = id(codes)
+    hit = _RUNS.get(key)
+    if hit is not None and hit[0]() is codes:
+        return hit[1], hit[2]
     g = int(codes.max()) + 1
-    if not a.shape[1]:
-        return np.zeros((g, 0))
+    starts = None
     if len(codes) > 1 and np.all(codes[1:] >= codes[:-1]):  # rows sorted by group (panel order)
         starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
-        if len(starts) == g:
-            return np.add.reduceat(a, starts, axis=0)
+        if len(starts) != g:
+            starts = None
+    if not codes.flags.writeable and codes.base is None:
+        for k in [k for k, v in _RUNS.items() if v[0]() is None]:
+            del _RUNS[k]
+        _RUNS[key] = (weakref.ref(codes), g, starts)
+    return g, starts
+
+
+def group_sums(codes: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """Column sums of ``a`` (n, p) within each code 0..G-1, as a (G, p) array."""
+    g, starts = _runs(codes)
+    if not a.shape[1]:
+        return np.zeros((g, 0))
+    if starts is not None:
+        return np.add.reduceat(a, starts, axis=0)
     return np.column_stack([np.bincount(codes, weights=a[:, j], minlength=g)
                             for j in range(a.shape[1])])
 

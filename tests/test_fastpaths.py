@@ -312,3 +312,19 @@ def test_condition_number_equals_the_svd_of_the_scaled_matrix(case: str) -> None
     a = _design_matrix(case)
     sv = np.linalg.svd(a / np.sqrt(np.mean(a * a, axis=0)), compute_uv=False)
     assert condition_number(a) == pytest.approx(sv[0] / sv[-1], rel=1e-8)
+
+
+def test_group_sums_remember_runs_only_of_read_only_codes() -> None:
+    from conduct.iv import group_sums
+    rng = np.random.default_rng(5)
+    a = rng.normal(size=(600, 3))
+    codes = np.repeat(np.arange(60), 10)
+    codes.flags.writeable = False
+    first = group_sums(codes, a)
+    np.testing.assert_allclose(group_sums(codes, a), first, rtol=0, atol=0)
+    np.testing.assert_allclose(first, np.eye(60)[codes].T @ a, atol=1e-12)  # indicator product
+    # a writeable array may change between calls: never served from memory
+    moving = np.repeat(np.arange(60), 10)
+    group_sums(moving, a)
+    moving[:] = np.repeat(np.arange(30), 20)
+    np.testing.assert_allclose(group_sums(moving, a), np.eye(30)[moving].T @ a, atol=1e-12)
