@@ -111,24 +111,51 @@ class _Shared:
                           for c, sign in self.cov.cluster_terms()]
         else:  # robust and homoskedastic treated as robust; HAC treated as robust
             self.terms = [(np.arange(n_all), n_all / dof)]
+        every_row = n == n_all
+        # per term: codes of the rows used, number of groups, demand influence summed by group
+        self.groups: list[tuple[np.ndarray, int, np.ndarray] | None] = []
+        for c, _ in self.terms:
+            g = int(c.max()) + 1
+            if g == n_all:  # each observation its own cluster: keep the rows
+                self.groups.append(None)
+            else:
+                self.groups.append((c if every_row else c[rows], g,
+                                    group_sums(c, self.psi_d)))
         # price and -Q enter every candidate's statistic the same way
         self.common = {key: self.reduced(y) for key, y in (("p", cols["_p"]),
                                                            ("q", -cols["Q"]))}
         self.qstar_column, self.common_p_column = cols[QSTAR], cols["_p"]
         self.nuisance = bool(study.supply.cost_slope)
 
-    def reduced(self, y: np.ndarray, extra: np.ndarray | None = None
+    def reduced(self, y: np.ndarray, g_alpha: np.ndarray | None = None
                 ) -> tuple[np.ndarray, list[np.ndarray]]:
         """Reduced-form coefficients of ``y`` and their cluster sums per term.
 
-        ``extra`` (n_all, kr) is added to the influence (the generated-regressor part).
+        ``g_alpha`` (kr, k_d) is the derivative of the coefficients in the demand
+        coefficients: the influence gains ``psi_d g_alpha'`` (the generated-regressor
+        part).  Sums by cluster are linear, so they are taken of ``r e`` and of
+        ``psi_d`` before the (kr, kr) and (k_d, kr) products.
         """
         pi = self.rtr_inv @ (self.r.T @ y) / self.n
         e = y - self.r @ pi
-        a = extra.copy() if extra is not None else np.zeros((self.n_all, self.kr))
-        add_rows(a, self.rows, (self.n_all / self.n) * (self.r * e[:, None]) @ self.rtr_inv)
-        return pi, [group_sums(c, a) if int(c.max()) + 1 < self.n_all else a
-                    for c, _ in self.terms]
+        re = self.r * e[:, None]
+        out = []
+        for grp in self.groups:
+            if grp is None:
+                a = (self.psi_d @ g_alpha.T if g_alpha is not None
+                     else np.zeros((self.n_all, self.kr)))
+                add_rows(a, self.rows, (self.n_all / self.n) * re @ self.rtr_inv)
+                out.append(a)
+                continue
+            codes, g, psi_sums = grp
+            sums = group_sums(codes, re)
+            if len(sums) < g:  # clusters without supply rows at the end
+                sums = np.vstack([sums, np.zeros((g - len(sums), self.kr))])
+            s = (self.n_all / self.n) * sums @ self.rtr_inv
+            if g_alpha is not None:
+                s += psi_sums @ g_alpha.T
+            out.append(s)
+        return pi, out
 
 
 class _Linear:
@@ -145,7 +172,7 @@ class _Linear:
             dep, h = markup
             y1, dqstar = dep - sh.common_p_column, h[sh.rows][:, None] * sh.dqstar
         g_alpha = -(sh.rtr_inv @ (sh.r.T @ dqstar) / sh.n)  # d pi / d alpha per unit theta0
-        pi1, sums1 = sh.reduced(y1, sh.psi_d @ g_alpha.T)
+        pi1, sums1 = sh.reduced(y1, g_alpha)
         (pi0, sums0), (pi2, sums2) = sh.common["p"], sh.common["q"]
         self.pi = [pi0, pi1, pi2]
         self.shared = sh
