@@ -483,11 +483,12 @@ def fit_iv(
     if n - k - cov.df_penalty <= 0:
         raise EstimationError(f"Too few observations ({n}) for {k} coefficients plus "
                               f"{cov.df_penalty} absorbed effects.")
-    if checked:
-        x, z = np.column_stack([exog, endog]), np.column_stack([exog, instruments])
+    if projection is not None:
+        x, z, z_cond = projection.x, projection.z, 1.0
+    elif checked:
+        x, z, z_cond = np.column_stack([exog, endog]), np.column_stack([exog, instruments]), 1.0
     else:
-        x, z = check_design(exog, endog, instruments, names, instrument_names)
-    z_cond = condition_number(z) if not checked else 1.0
+        x, z, z_cond = _checked_design(exog, endog, instruments, names, instrument_names)
     if estimator == "2sls" and cov.kind != "hac":
         proj = projection if projection is not None else Projection(x, z)
         fit = replace(proj.fit(y, names, cov, j_df=kz - ke), z_condition=z_cond)
@@ -610,7 +611,7 @@ class Projection:
     """
 
     def __init__(self, x: np.ndarray, z: np.ndarray) -> None:
-        self.x = x
+        self.x, self.z = x, z
         # X_hat = Z (Z'Z)^-1 Z'X; from the cross-products when Z is well conditioned
         # (rounding about 1e-10 relative), else by lstsq
         self.xhat = z @ ls_coef(z, x, max_cond=1e6)
@@ -726,13 +727,21 @@ def check_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
     EstimationError
         Naming the column that has no variation, or the set that is collinear.
     """
+    x, z, _ = _checked_design(exog, endog, instruments, names, instrument_names)
+    return x, z
+
+
+def _checked_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
+                    names: tuple[str, ...], instrument_names: tuple[str, ...] | None
+                    ) -> tuple[np.ndarray, np.ndarray, float]:
+    """:func:`check_design` that also returns the scaled condition number of ``z``."""
     kx, kz = exog.shape[1], instruments.shape[1]
     x = np.column_stack([exog, endog])
     z = np.column_stack([exog, instruments])
     _check_rank(x, names, "regressors")
     inames = instrument_names or tuple(f"instrument {i + 1}" for i in range(kz))
-    _check_rank(z, names[:kx] + tuple(inames), "instruments")
-    return x, z
+    z_cond = _check_rank(z, names[:kx] + tuple(inames), "instruments")
+    return x, z, z_cond
 
 
 def condition_number(a: np.ndarray) -> float:
@@ -753,9 +762,10 @@ def _r_condition(r: np.ndarray) -> float:
     return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 
-def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
+def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> float:
+    """Refuse a column without variation or collinear columns; return the condition number."""
     if a.shape[1] == 0:
-        return
+        return 1.0
     r = r_factor(a)
     scale = np.sqrt(np.sum(r * r, axis=0) / a.shape[0])  # root-mean-square of each column
     zero = np.flatnonzero(scale < 1e-12 * max(1.0, float(scale.max())))
@@ -771,3 +781,4 @@ def _check_rank(a: np.ndarray, names: tuple[str, ...], what: str) -> None:
             f"The {what} are collinear (condition number {cond:.3g} after scaling): "
             f"one of {', '.join(names)} is a combination of the others. Drop one."
         )
+    return cond
