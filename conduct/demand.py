@@ -29,7 +29,7 @@ from conduct.diagnostics import (
     stage_strength,
 )
 from conduct.errors import EstimationError
-from conduct.iv import IVFit, fit_iv
+from conduct.iv import IVFit, Projection, checked_design, fit_iv
 from conduct.panel import Panel
 from conduct.study import Study
 from conduct.weakiv import ARSet, anderson_rubin_set
@@ -230,9 +230,14 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     endog_arr = np.column_stack([cols[c] for c in endog])
     instr_arr = np.column_stack([cols[c] for c in instr])
     names = tuple(exog_names + endog)
+    proj = None
+    if (spec.estimator == "2sls" and prep.cov.kind != "hac"  # the array path of fit_iv
+            and instr_arr.shape[1] >= endog_arr.shape[1]  # else fit_iv says what is wrong
+            and n - len(names) - prep.cov.df_penalty > 0):
+        proj = Projection(*checked_design(exog_arr, endog_arr, instr_arr, names, tuple(instr)))
     fit = fit_iv(cols["_y"], exog_arr, endog_arr, instr_arr, names,
                  estimator=spec.estimator, cov=prep.cov, overid=diagnostics,
-                 instrument_names=tuple(instr))
+                 instrument_names=tuple(instr), projection=proj)
 
     # slope of Q in P at every observation, and its gradient in the coefficients
     rot = {r: f[r].to_numpy(dtype=float) for r in spec.rotators}
@@ -256,7 +261,8 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     if diagnostics:
         strength = stage_strength(endog_arr, instr_arr, exog_arr, first, prep.cov,
                                   f"the {price_name} coefficient")
-        endogeneity = endogeneity_test(cols["_y"], exog_arr, endog_arr, instr_arr, prep.cov)
+        endogeneity = endogeneity_test(cols["_y"], exog_arr, endog_arr, instr_arr, prep.cov,
+                                       projection=proj)
         if len(endog) > 1:
             ar_note = ("several endogenous regressors (price x rotator terms): the set is "
                        "reported for theta, not for the price coefficient")

@@ -18,7 +18,7 @@ import numpy as np
 from scipy import stats
 
 from conduct.errors import EstimationError
-from conduct.iv import CovSpec, cluster_cov, condition_number, ls_coef
+from conduct.iv import CovSpec, Projection, cluster_cov, condition_number, ls_coef
 from conduct.stockyogo import strength_reading
 from conduct.weakiv import effective_f, first_stage
 
@@ -250,7 +250,8 @@ class EndogeneityTest:
 
 
 def endogeneity_test(y: np.ndarray, exog: np.ndarray, endog: np.ndarray,
-                     instruments: np.ndarray, cov: CovSpec) -> EndogeneityTest:
+                     instruments: np.ndarray, cov: CovSpec,
+                     projection: Projection | None = None) -> EndogeneityTest:
     """Control-function (Durbin-Wu-Hausman, regression form) test of exogeneity.
 
     Parameters
@@ -262,6 +263,9 @@ def endogeneity_test(y: np.ndarray, exog: np.ndarray, endog: np.ndarray,
     cov : CovSpec
         Covariance choice; the Wald statistic uses it (robust to heteroskedasticity
         and clustering when chosen, as in Wooldridge 2010, sec. 6.3.1).
+    projection : Projection or None
+        The stage's 2SLS first stage on ``[exog, endog]`` and ``[exog, instruments]``,
+        when already computed: its fitted endogenous columns give ``V``.
 
     Returns
     -------
@@ -273,8 +277,11 @@ def endogeneity_test(y: np.ndarray, exog: np.ndarray, endog: np.ndarray,
     regress ``y`` by OLS on ``[W, X, V]`` and test that the coefficients on ``V``
     are zero.
     """
-    z = np.column_stack([exog, instruments])
-    v = endog - z @ ls_coef(z, endog)
+    if projection is not None:
+        v = endog - projection.xhat[:, exog.shape[1]:]
+    else:
+        z = np.column_stack([exog, instruments])
+        v = endog - z @ ls_coef(z, endog)
     x = np.column_stack([exog, endog, v])
     n, k = x.shape
     xtx_inv = np.linalg.inv(x.T @ x)

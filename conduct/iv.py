@@ -34,8 +34,8 @@ from conduct.absorb import dense_codes
 from conduct.errors import EstimationError
 
 __all__ = [
-    "CovSpec", "IVFit", "check_design", "cluster_cov", "fit_2sls_arrays", "fit_iv", "hansen_j",
-    "influence_2sls",
+    "CovSpec", "IVFit", "Projection", "check_design", "checked_design", "cluster_cov",
+    "fit_2sls_arrays", "fit_iv", "hansen_j", "influence_2sls",
 ]
 
 CovType = Literal["homoskedastic", "robust", "cluster", "hac"]
@@ -484,11 +484,11 @@ def fit_iv(
         raise EstimationError(f"Too few observations ({n}) for {k} coefficients plus "
                               f"{cov.df_penalty} absorbed effects.")
     if projection is not None:
-        x, z, z_cond = projection.x, projection.z, 1.0
+        x, z, z_cond = projection.x, projection.z, projection.z_condition
     elif checked:
         x, z, z_cond = np.column_stack([exog, endog]), np.column_stack([exog, instruments]), 1.0
     else:
-        x, z, z_cond = _checked_design(exog, endog, instruments, names, instrument_names)
+        x, z, z_cond = checked_design(exog, endog, instruments, names, instrument_names)
     if estimator == "2sls" and cov.kind != "hac":
         proj = projection if projection is not None else Projection(x, z)
         fit = replace(proj.fit(y, names, cov, j_df=kz - ke), z_condition=z_cond)
@@ -608,10 +608,13 @@ class Projection:
         (n, k) regressors ``[exog, endog]``.
     z : numpy.ndarray
         (n, m) instruments ``[exog, excluded]``.
+    z_condition : float
+        Scaled condition number of ``z`` (from :func:`checked_design`), passed on
+        to the fits.
     """
 
-    def __init__(self, x: np.ndarray, z: np.ndarray) -> None:
-        self.x, self.z = x, z
+    def __init__(self, x: np.ndarray, z: np.ndarray, z_condition: float = 1.0) -> None:
+        self.x, self.z, self.z_condition = x, z, z_condition
         # X_hat = Z (Z'Z)^-1 Z'X; from the cross-products when Z is well conditioned
         # (rounding about 1e-10 relative), else by lstsq
         self.xhat = z @ ls_coef(z, x, max_cond=1e6)
@@ -727,14 +730,21 @@ def check_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
     EstimationError
         Naming the column that has no variation, or the set that is collinear.
     """
-    x, z, _ = _checked_design(exog, endog, instruments, names, instrument_names)
+    x, z, _ = checked_design(exog, endog, instruments, names, instrument_names)
     return x, z
 
 
-def _checked_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
+def checked_design(exog: np.ndarray, endog: np.ndarray, instruments: np.ndarray,
                     names: tuple[str, ...], instrument_names: tuple[str, ...] | None
                     ) -> tuple[np.ndarray, np.ndarray, float]:
-    """:func:`check_design` that also returns the scaled condition number of ``z``."""
+    """:func:`check_design` that also returns the scaled condition number of ``z``.
+
+    Parameters and errors as for :func:`check_design`.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray, float)
+    """
     kx, kz = exog.shape[1], instruments.shape[1]
     x = np.column_stack([exog, endog])
     z = np.column_stack([exog, instruments])
