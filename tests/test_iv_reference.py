@@ -169,6 +169,12 @@ def test_endogeneity_test_matches_linearmodels(kind):
     # same augmented regression, same small-sample factor (debiased=True): equal
     assert ours.stat == pytest.approx(ref.stat, rel=1e-10)
     assert ours.p < 0.05  # the design makes x endogenous
+    # the demand stage passes its 2SLS projection instead of refitting the first stage
+    from conduct.iv import Projection
+    shared = endogeneity_test(y, exog, x[:, None], z, CovSpec(kind=kind),
+                              projection=Projection(np.column_stack([exog, x]),
+                                                    np.column_stack([exog, z])))
+    assert shared.stat == pytest.approx(ref.stat, rel=1e-10)
 
 
 @pytest.mark.parametrize("kind", ["homoskedastic", "robust", "cluster"])
