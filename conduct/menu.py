@@ -329,7 +329,7 @@ def menu_test(
     missing = [key for key in wanted if key not in cols]
     prep = supply.prepared
     if missing:
-        fs = f.iloc[rows].reset_index(drop=True)
+        fs = f if len(rows) == len(f) else f.iloc[rows].reset_index(drop=True)
         raw: dict[str, np.ndarray] = {}
         for key in missing:
             if key == "_p":

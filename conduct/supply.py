@@ -318,7 +318,7 @@ def build_system(
             + (" in the selected rows" if subset is not None else "")
             + "; the supply relation cannot be estimated. Check the demand specification."
         )
-    fs = f.iloc[rows].reset_index(drop=True)
+    fs = f if len(rows) == len(f) else f.iloc[rows].reset_index(drop=True)
     data, raw = supply_columns(fs, study)
     p, q = data["_p"], data["Q"]
     slope = demand.slope[rows]
