@@ -14,7 +14,11 @@ panel.
 
 from __future__ import annotations
 
+import copy
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -29,12 +33,16 @@ from conduct.tableio import (
     MARKET,
     PERIOD,
     TIME,
+    PeriodCodes,
     file_rows,
     file_sha256,
+    market_codes,
     market_labels,
     parse_periods,
+    period_codes,
     read_table,
     rows_text,
+    take_labels,
     to_numeric,
 )
 
@@ -60,6 +68,12 @@ class Assembled:
         Column -> missing cells in those dropped rows.
     assembly : Assembly
         Sources, coverage and derived variables (``table`` not yet set).
+    market_codes : numpy.ndarray
+        (n,) int64 code of each row's ``_market``, in the order pandas sorts the labels.
+    periods : PeriodCodes
+        Each row's period among the distinct ones, in calendar order (``_t`` and
+        ``_period`` of row i are ``periods.t[periods.codes[i]]`` and
+        ``periods.labels[periods.codes[i]]``).
     """
 
     frame: pd.DataFrame
@@ -68,6 +82,8 @@ class Assembled:
     dropped_rows: int
     dropped_detail: dict[str, int]
     assembly: Assembly
+    market_codes: np.ndarray
+    periods: PeriodCodes
 
 
 @dataclass
@@ -169,53 +185,90 @@ def _numeric_set(study: Study) -> set[str]:
 
 
 def _main_table(study: Study, main: pd.DataFrame, take: list[str], numeric: set[str]
-                ) -> tuple[pd.DataFrame, np.ndarray, str, int, dict[str, int]]:
+                ) -> tuple[pd.DataFrame, np.ndarray, str, int, dict[str, int], _Keys]:
     spec = study.panel
     path = spec.file
-    frame = main[take].copy()
-    rows = file_rows(len(frame), path)
-    for col in take:
-        if col in numeric:
-            frame[col] = to_numeric(frame, col, path, rows)
+    rows = file_rows(len(main), path)
+    # the columns taken, numeric ones converted; the frame is built once at the end from
+    # these arrays without a copy.  When some columns are not taken, pandas copies the
+    # others out of main's blocks, so that main's memory can be freed.
+    taken = main if set(take) == set(main.columns) else main[take]
+    data = {col: to_numeric(taken, col, path, rows) if col in numeric else taken[col]
+            for col in take}
     keys = [c for c in (spec.market, spec.period) if c]
-    kmiss = frame[keys].isna().any(axis=1).to_numpy()
+    key_miss = {c: data[c].isna().to_numpy() for c in keys}
+    kmiss = np.logical_or.reduce([key_miss[c] for c in keys])
     detail: dict[str, int] = {}
     if kmiss.any():
         if not spec.drop_missing:
-            col = next(c for c in keys if frame[c].isna().any())
+            col = next(c for c in keys if key_miss[c].any())
             raise DataError(
                 f"Data file {path}: column '{col}' has missing values at "
-                f"{rows_text(rows[frame[col].isna().to_numpy()])}. Fill them, or set "
+                f"{rows_text(rows[key_miss[col]])}. Fill them, or set "
                 "drop_missing = true under [panel] to drop such rows (every dropped row is "
                 "counted in the output)."
             )
         for col in (c for c in study.columns() if c in take):
-            n = int(frame.loc[kmiss, col].isna().sum())
+            n = int(np.count_nonzero(data[col].isna().to_numpy()[kmiss]))
             if n:
                 detail[col] = n
-        frame = frame.loc[~kmiss].reset_index(drop=True)
-        rows = rows[~kmiss]
-        if len(frame) == 0:
+        keep = ~kmiss
+        data = {col: values[keep].reset_index(drop=True) for col, values in data.items()}
+        rows = rows[keep]
+        if len(rows) == 0:
             raise DataError(f"Data file {path}: every row has a missing value; nothing is left.")
-    labels, t, kind = parse_periods(frame[spec.period], spec.period, path, rows)
-    frame[PERIOD] = labels
-    frame[TIME] = t
-    frame[MARKET] = (market_labels(frame[spec.market], rows) if spec.market
-                     else np.full(len(frame), "all", dtype=object))
-    _refuse_duplicates(frame, rows, study)
-    return frame, rows, kind, int(kmiss.sum()), detail
+    periods = period_codes(data[spec.period], spec.period, path, rows)
+    if spec.market:
+        m_codes, m_labels = market_codes(data[spec.market], rows)
+    else:
+        m_codes = np.zeros(len(rows), dtype=np.int64)
+        m_labels = np.asarray(["all"], dtype=object)
+    coded = _Keys(market=m_codes, market_labels=m_labels, periods=periods)
+    _refuse_duplicates(coded, rows, study)
+    # Series share their data without a copy; pandas copies it before any write
+    columns: dict[str, Any] = dict(data)
+    columns[PERIOD] = take_labels(periods.labels, periods.codes)
+    columns[TIME] = periods.t[periods.codes]
+    columns[MARKET] = take_labels(m_labels, m_codes)
+    frame = pd.DataFrame(columns, copy=False)
+    frame.attrs = copy.deepcopy(taken.attrs)  # as a copy of main[take] keeps them
+    return frame, rows, periods.kind, int(kmiss.sum()), detail, coded
 
 
-def _refuse_duplicates(frame: pd.DataFrame, rows: np.ndarray, study: Study) -> None:
+@dataclass(frozen=True, slots=True)
+class _Keys:
+    """The main table's keys as codes, one entry per row kept.
+
+    ``market`` indexes ``market_labels`` (sorted as pandas sorts the labels);
+    ``periods.codes`` indexes the distinct periods in calendar order.
+    """
+
+    market: np.ndarray
+    market_labels: np.ndarray
+    periods: PeriodCodes
+
+
+def _refuse_duplicates(keys: _Keys, rows: np.ndarray, study: Study) -> None:
+    """Refuse a (market, period) that repeats, comparing codes (one per label, one per _t)."""
     spec = study.panel
-    dup = frame.duplicated([MARKET, TIME], keep=False).to_numpy()
-    if not dup.any():
+    n_periods = len(keys.periods.t)
+    pair = keys.market * n_periods + keys.periods.codes
+    cells = len(keys.market_labels) * n_periods
+    if len(pair) > 1 and np.all(pair[1:] > pair[:-1]):  # grid order: nothing repeats
         return
+    if cells <= 4 * len(pair) + 1024:
+        counts = np.bincount(pair, minlength=cells)
+        if counts.max(initial=0) <= 1:
+            return
+        dup = counts[pair] > 1
+    else:
+        dup = pd.Series(pair).duplicated(keep=False).to_numpy()
+        if not dup.any():
+            return
     i = int(np.flatnonzero(dup)[0])
-    first = np.flatnonzero(((frame[MARKET] == frame[MARKET].iloc[i])
-                            & (frame[TIME] == frame[TIME].iloc[i])).to_numpy())
-    where = (f"market '{frame[MARKET].iloc[i]}', " if spec.market else "") + \
-        f"period '{frame[PERIOD].iloc[i]}'"
+    first = np.flatnonzero(pair == pair[i])
+    where = (f"market '{keys.market_labels[keys.market[i]]}', " if spec.market else "") + \
+        f"period '{keys.periods.labels[keys.periods.codes[i]]}'"
     what = "(market, period) pair" if spec.market else "period"
     hint = "" if spec.market else (
         " Several markets in one file need panel.market to name the market column."
@@ -319,6 +372,23 @@ def _join_firms(frame: pd.DataFrame, study: Study, kind: str, columns: dict[str,
     return out, record, note
 
 
+def _read_and_hash(path: Path, sheet: str | None, csv_options: dict[str, str]
+                   ) -> tuple[pd.DataFrame, str]:
+    """The main table and the SHA-256 of its file, the hash taken while the table is parsed.
+
+    Both release the interpreter lock for most of their work.  The outcome is
+    that of reading and then hashing: a read error is raised as it is (the hash
+    is then left to finish on its own), a hashing error after a good read.
+    """
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="conduct-sha256")
+    try:
+        digest = pool.submit(file_sha256, path)
+        main = read_table(path, sheet, csv_options=csv_options)
+        return main, digest.result()
+    finally:
+        pool.shutdown(wait=False)
+
+
 def assemble(study: Study) -> Assembled:
     """Read the main table and every source, join them, aggregate firms, derive variables.
 
@@ -338,12 +408,11 @@ def assemble(study: Study) -> Assembled:
         table that does not add up, a derived variable that cannot be computed.
     """
     spec = study.panel
-    main = read_table(spec.file, spec.sheet, csv_options=spec.csv_options())
-    main_sha = file_sha256(spec.file)
+    main, main_sha = _read_and_hash(spec.file, spec.sheet, spec.csv_options())
     sources = _read_sources(study)
     main_take = _locate(study, main, sources)
     numeric = _numeric_set(study)
-    frame, rows, kind, dropped, detail = _main_table(study, main, main_take, numeric)
+    frame, rows, kind, dropped, detail, coded = _main_table(study, main, main_take, numeric)
     keys = {spec.market, spec.period}
     records = [SourceRecord(
         name="panel", role="main", file=spec.file, sha256=main_sha, rows=len(main), on=(),
@@ -387,4 +456,5 @@ def assemble(study: Study) -> Assembled:
     assembly = Assembly(sources=tuple(records), derived=derived_records, origins=origins,
                         firms_note=firms_note)
     return Assembled(frame=frame, rows=rows, kind=kind, dropped_rows=dropped,
-                     dropped_detail=detail, assembly=assembly)
+                     dropped_detail=detail, assembly=assembly, market_codes=coded.market,
+                     periods=coded.periods)

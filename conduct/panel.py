@@ -111,30 +111,35 @@ class Panel:
 
 
 def _missing(frame: pd.DataFrame, cols: list[str], study: Study, rows: np.ndarray,
-             origin: Assembly) -> tuple[pd.DataFrame, np.ndarray, dict[str, int]]:
-    """Apply the missing-value rule to the used columns: refuse, or drop and count."""
+             origin: Assembly
+             ) -> tuple[pd.DataFrame, np.ndarray, dict[str, int], np.ndarray | None]:
+    """Apply the missing-value rule to the used columns: refuse, or drop and count.
+
+    Returns the rows kept, their numbers in the file, the count of dropped rows
+    by column, and the mask of rows kept (None when every row is kept).
+    """
     spec = study.panel
-    miss = frame[cols].isna()
+    miss = {col: frame[col].isna().to_numpy() for col in cols}
     detail: dict[str, int] = {}
-    if not miss.to_numpy().any():
-        return frame, rows, detail
+    if not any(m.any() for m in miss.values()):
+        return frame, rows, detail, None
     if not spec.drop_missing:
         col = next(c for c in cols if miss[c].any())
         raise DataError(
             f"Data file {spec.file}: column '{col}'{origin.origin(col)} has missing values at "
-            f"{rows_text(rows[miss[col].to_numpy()])}. Fill them, or set drop_missing = true "
+            f"{rows_text(rows[miss[col]])}. Fill them, or set drop_missing = true "
             "under [panel] to drop such rows (every dropped row is counted in the output)."
         )
     for col in cols:
-        n = int(miss[col].sum())
+        n = int(np.count_nonzero(miss[col]))
         if n:
             detail[col] = n
-    keep = ~miss.any(axis=1).to_numpy()
+    keep = ~np.logical_or.reduce([miss[c] for c in cols])
     frame = frame.loc[keep].reset_index(drop=True)
     rows = rows[keep]
     if len(frame) == 0:
         raise DataError(f"Data file {spec.file}: every row has a missing value; nothing is left.")
-    return frame, rows, detail
+    return frame, rows, detail, keep
 
 
 MAX_MAGNITUDE = 1e100  # squares and cross-products must stay finite in double precision
@@ -166,6 +171,8 @@ def check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
     path = spec.file
     for col in study.numeric_columns():
         vals = frame[col].to_numpy(dtype=float)
+        if _plain_range(vals):
+            continue
         bad = np.flatnonzero(~np.isfinite(vals))
         if len(bad):
             raise DataError(f"Data file {path}: column '{col}'{origin.origin(col)} has "
@@ -182,6 +189,8 @@ def check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
             )
     for role, col in (("price", spec.price), ("quantity", spec.quantity)):
         vals = frame[col].to_numpy()
+        if len(vals) and vals.min() > 0:
+            continue
         bad = np.flatnonzero(vals <= 0)
         if len(bad):
             raise DataError(
@@ -209,17 +218,31 @@ def check_values(frame: pd.DataFrame, study: Study, rows: np.ndarray,
             )
 
 
-def _gaps(frame: pd.DataFrame, kind: str) -> int:
-    if kind in ("quarter", "month", "integer"):
-        span = frame.groupby(MARKET)[TIME].agg(["min", "max", "count"])
-        return int(((span["max"] - span["min"] + 1) - span["count"]).sum())
-    gaps = 0
-    all_t = np.sort(frame[TIME].unique())
-    pos = {v: i for i, v in enumerate(all_t)}
-    for _, g in frame.groupby(MARKET):
-        idx = [pos[v] for v in g[TIME]]
-        gaps += (max(idx) - min(idx) + 1) - len(idx)
-    return gaps
+def _plain_range(vals: np.ndarray) -> bool:
+    """True when the smallest and largest value alone show every value is finite and of
+    sensible magnitude (all of one sign); otherwise each value is checked."""
+    if not len(vals):
+        return True
+    lo, hi = float(vals.min()), float(vals.max())  # NaN or infinity shows here
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return False
+    if lo > 0:
+        return lo >= MIN_MAGNITUDE and hi <= MAX_MAGNITUDE
+    if hi < 0:
+        return -hi >= MIN_MAGNITUDE and -lo <= MAX_MAGNITUDE
+    return False
+
+
+def _gaps(market: np.ndarray, position: np.ndarray) -> int:
+    """Missing cells inside each market's own first-to-last span.
+
+    ``market`` and ``position`` are codes of rows sorted by market, then by
+    position, without repeats; consecutive periods differ by one in ``position``.
+    """
+    n = len(market)
+    starts = np.flatnonzero(np.r_[True, market[1:] != market[:-1]])
+    ends = np.r_[starts[1:] - 1, n - 1]
+    return int(np.sum(position[ends] - position[starts] + 1) - n)
 
 
 def _user_table(full: pd.DataFrame, study: Study) -> pd.DataFrame:
@@ -258,35 +281,47 @@ def load_panel(study: Study) -> Panel:
     asm = assemble(study)
     origin = asm.assembly
     cols = list(study.columns())
-    full, rows, detail = _missing(asm.frame, cols, study, asm.rows, origin)
+    full, rows, detail, kept = _missing(asm.frame, cols, study, asm.rows, origin)
     for col, n in asm.dropped_detail.items():
         detail[col] = detail.get(col, 0) + n
     dropped = asm.dropped_rows + len(asm.frame) - len(full)
+    # keys as codes: markets in the order pandas sorts their labels, periods in calendar order
+    m_codes, p_codes = asm.market_codes, asm.periods.codes
+    if kept is not None:
+        m_codes, p_codes = m_codes[kept], p_codes[kept]
     for col in study.numeric_columns():
-        full[col] = full[col].astype(float)
+        if full[col].dtype != np.float64:
+            full[col] = full[col].astype(float)
     check_values(full, study, rows, origin)
 
     # market then period order; markets compared through sorted codes (labels sort alike)
-    m_codes = pd.factorize(full[MARKET], sort=True)[0]
     t = full[TIME].to_numpy()
     step_m, step_t = np.diff(m_codes), np.diff(t)
     if not np.all((step_m > 0) | ((step_m == 0) & (step_t > 0))):
         order = np.lexsort((t, m_codes))
         full = full.iloc[order].reset_index(drop=True)
         rows = rows[order]
-    frame = full[[*cols, PERIOD, TIME, MARKET]].copy()
-    frame[TIME] = frame[TIME].astype(np.int64)
+        m_codes, p_codes = m_codes[order], p_codes[order]
+    # a new frame (no copy of the data: pandas copies on write, and before pandas 3
+    # selecting columns copies them)
+    frame = full[[*cols, PERIOD, TIME, MARKET]].copy(deep=False)
+    if frame[TIME].dtype != np.int64:
+        frame[TIME] = frame[TIME].astype(np.int64)
 
-    n_markets = int(frame[MARKET].nunique())
-    periods = frame.drop_duplicates(TIME).sort_values(TIME)
+    n_markets = int(np.count_nonzero(np.bincount(m_codes)))
+    present = np.bincount(p_codes, minlength=len(asm.periods.t)) > 0
+    seen = np.flatnonzero(present)  # distinct periods in the panel, in calendar order
+    # gaps count calendar steps; between dates, steps among the dates present
+    position = ((np.cumsum(present) - 1)[p_codes] if asm.kind == "date"
+                else frame[TIME].to_numpy())
     desc = PanelDescription(
         rows=len(frame),
         markets=n_markets,
-        periods=len(periods),
-        first_period=str(periods[PERIOD].iloc[0]),
-        last_period=str(periods[PERIOD].iloc[-1]),
-        balanced=bool(len(frame) == n_markets * len(periods)),
-        gaps=_gaps(frame, asm.kind),
+        periods=len(seen),
+        first_period=str(asm.periods.labels[seen[0]]),
+        last_period=str(asm.periods.labels[seen[-1]]),
+        balanced=bool(len(frame) == n_markets * len(seen)),
+        gaps=_gaps(m_codes, position),
         dropped_rows=int(dropped),
         dropped_detail=dict(sorted(detail.items())),
         period_kind=asm.kind,

@@ -15,6 +15,7 @@ import hashlib
 import re
 import unicodedata
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -23,8 +24,9 @@ import pandas as pd
 from conduct.errors import DataError, suggest
 
 __all__ = [
-    "MARKET", "PARQUET_SUFFIXES", "PERIOD", "TIME", "file_row", "file_rows", "file_sha256",
-    "market_labels", "parquet_files", "parse_periods", "read_table", "rows_text", "to_numeric",
+    "MARKET", "PARQUET_SUFFIXES", "PERIOD", "TIME", "PeriodCodes", "file_row", "file_rows",
+    "file_sha256", "market_codes", "market_labels", "parquet_files", "parse_periods",
+    "period_codes", "read_table", "rows_text", "take_labels", "to_numeric",
 ]
 
 # Internal column names of assembled and validated frames.
@@ -235,12 +237,142 @@ def _labels(positions: np.ndarray, text: Callable[[int], str]) -> np.ndarray:
     return np.asarray([text(int(v)) for v in uniq], dtype=object)[inverse]
 
 
+@dataclass(frozen=True, slots=True)
+class PeriodCodes:
+    """A period column coded on its calendar: each row's period among the distinct ones.
+
+    Attributes
+    ----------
+    codes : numpy.ndarray
+        (n,) int64 position of each row's period in ``labels`` and ``t``.
+    labels : numpy.ndarray
+        (G,) object array of the normalised labels of the distinct periods.
+    t : numpy.ndarray
+        (G,) int64 calendar positions of the distinct periods, increasing.
+    kind : str
+        ``integer``, ``quarter``, ``month`` or ``date``.
+    """
+
+    codes: np.ndarray
+    labels: np.ndarray
+    t: np.ndarray
+    kind: str
+
+
 def parse_periods(values: pd.Series, col: str, path: Path, file_rows: np.ndarray,
                   what: str = "Data file") -> tuple[np.ndarray, np.ndarray, str]:
     """Return (labels, integer calendar positions, kind) for a period column.
 
     ``file_rows`` holds each value's row number in the file, for messages.
+
+    Parameters
+    ----------
+    values : pandas.Series
+        The period column.
+    col : str
+        Its name, for messages.
+    path : Path
+        Its file, for messages.
+    file_rows : numpy.ndarray
+        Each value's row number in the file, for messages.
+    what : str
+        How to name the file in messages.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray, str)
+        Each row's normalised label (object array), its int64 calendar position,
+        and the period kind.
+
+    Raises
+    ------
+    DataError
+        For values that are neither integers, dates, months nor quarter labels.
     """
+    coded = period_codes(values, col, path, file_rows, what)
+    return coded.labels[coded.codes], coded.t[coded.codes], coded.kind
+
+
+def period_codes(values: pd.Series, col: str, path: Path, file_rows: np.ndarray,
+                 what: str = "Data file") -> PeriodCodes:
+    """A period column parsed as :func:`parse_periods` does, returned as codes.
+
+    A column of text, integers, floats or timestamps is parsed on its distinct
+    values only (a panel repeats each period once per market): whether a
+    column is integers, quarters, months or dates, each value's label and its
+    position depend on the set of values and on the value itself, never on
+    how often or where it occurs.  When the distinct values fail, the whole
+    column is parsed again, so the message names every row as it does without
+    this shortcut.  Other columns (mixed Python objects, categories) are
+    parsed row by row.
+
+    Parameters
+    ----------
+    values, col, path, file_rows, what
+        As for :func:`parse_periods`.
+
+    Returns
+    -------
+    PeriodCodes
+
+    Raises
+    ------
+    DataError
+        As :func:`parse_periods`.
+    """
+    distinct = _distinct(values, floats=True)
+    if distinct is not None:
+        raw, uniq = distinct
+        try:  # rows in messages come from the row-by-row pass below
+            labels, t, kind = _parse_rows(uniq, col, path, np.zeros(len(uniq), np.int64),
+                                          what)
+        except DataError:
+            pass
+        else:
+            return _on_calendar(raw, labels, t, kind)
+    labels, t, kind = _parse_rows(values, col, path, file_rows, what)
+    return _on_calendar(np.arange(len(t), dtype=np.int64), labels, t, kind)
+
+
+def _on_calendar(raw: np.ndarray, labels: np.ndarray, t: np.ndarray, kind: str) -> PeriodCodes:
+    """Codes in calendar order from each row's index ``raw`` into (labels, t).
+
+    A period's label is a function of its position (``t`` is the integer, the
+    quarter or month count, or the rank of the timestamp), so the distinct
+    positions carry the distinct labels.
+    """
+    by_t, distinct_t = pd.factorize(np.asarray(t, dtype=np.int64))  # in order of appearance
+    seen = np.maximum.accumulate(by_t)
+    first = np.flatnonzero(np.r_[len(seen) > 0, seen[1:] > seen[:-1]])  # first of each
+    order = np.argsort(distinct_t, kind="stable")
+    rank = np.empty(len(order), dtype=np.int64)
+    rank[order] = np.arange(len(order))
+    return PeriodCodes(codes=rank[by_t][raw], labels=np.asarray(labels, dtype=object)[first][order],
+                       t=np.asarray(distinct_t, dtype=np.int64)[order], kind=kind)
+
+
+def _distinct(values: pd.Series, floats: bool) -> tuple[np.ndarray, pd.Series] | None:
+    """Each row's index among the distinct values, and those values (same dtype).
+
+    None unless hashing keeps every value apart that parsing tells apart: text
+    (a string dtype, or Python strings only), integers, timestamps and, with
+    ``floats``, floats (hashing merges 0.0 with -0.0).  Missing values form one
+    distinct value of their own.
+    """
+    dtype = values.dtype
+    exact = isinstance(dtype, pd.StringDtype | pd.DatetimeTZDtype) or (
+        isinstance(dtype, np.dtype) and dtype.kind in ("iuMf" if floats else "iuM"))
+    if not exact and pd.api.types.is_object_dtype(dtype):
+        exact = pd.api.types.infer_dtype(values, skipna=False) == "string"
+    if not exact:
+        return None
+    raw, uniq = pd.factorize(values, use_na_sentinel=False)
+    return raw.astype(np.int64, copy=False), pd.Series(uniq, name=values.name)
+
+
+def _parse_rows(values: pd.Series, col: str, path: Path, file_rows: np.ndarray,
+                what: str) -> tuple[np.ndarray, np.ndarray, str]:
+    """:func:`parse_periods` on every row."""
     if pd.api.types.is_bool_dtype(values):
         raise DataError(f"{what} {path}: period column '{col}' holds true/false values.")
     if pd.api.types.is_datetime64_any_dtype(values):
@@ -352,6 +484,64 @@ def file_rows(n: int, path: Path) -> np.ndarray:
 def file_sha256(path: Path) -> str:
     """SHA-256 of the file's bytes."""
     return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def market_codes(values: pd.Series, rows: np.ndarray | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Market identifiers as :func:`market_labels` makes them, coded in sorted order.
+
+    Text and integer identifiers are normalised on their distinct values only
+    (the result for a value depends on the value alone); floats, whose text
+    depends on the whole column, row by row.
+
+    Parameters
+    ----------
+    values : pandas.Series
+        The market column, without missing values.
+    rows : numpy.ndarray or None
+        Each value's row number in the file, for messages.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        (n,) int64 codes into the labels, and the (G,) distinct labels (object
+        array) in the order pandas sorts the column of labels.
+
+    Raises
+    ------
+    DataError
+        For non-finite float identifiers.
+    """
+    distinct = _distinct(values, floats=False)
+    if distinct is not None:
+        raw, uniq = distinct
+        labels = market_labels(uniq)
+    else:
+        raw, labels = np.arange(len(values), dtype=np.int64), market_labels(values, rows)
+    # sorted as pandas sorts the column these labels make (see take_labels)
+    by_label, distinct_labels = pd.factorize(pd.Series(labels), sort=True,
+                                             use_na_sentinel=False)
+    return (by_label.astype(np.int64, copy=False)[raw],
+            np.asarray(distinct_labels, dtype=object))
+
+
+def take_labels(labels: np.ndarray, codes: np.ndarray) -> pd.api.extensions.ExtensionArray:
+    """The column pandas makes of ``labels[codes]``, built from the distinct labels.
+
+    Parameters
+    ----------
+    labels : numpy.ndarray
+        (G,) object array of labels.
+    codes : numpy.ndarray
+        (n,) positions into ``labels``.
+
+    Returns
+    -------
+    pandas.api.extensions.ExtensionArray
+        Of the dtype pandas infers for the labels (``str`` for text under
+        pandas 3, ``object`` before), without a Python object per row.
+    """
+    return pd.Series(labels).array.take(codes)
 
 
 def market_labels(values: pd.Series, rows: np.ndarray | None = None) -> np.ndarray:
