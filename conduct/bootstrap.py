@@ -243,7 +243,7 @@ def replicate_kernel(panel: Panel, study: Study) -> ReplicateKernel | None:
     if study.demand.estimator != "2sls" or study.supply is None:
         return None
     f = panel.frame
-    mk = dense_codes(f[MARKET])
+    mk = panel.market_codes()
     order = np.argsort(mk, kind="stable")
     bounds = np.searchsorted(mk[order], np.arange(int(mk.max()) + 2))
     dc = demand_columns(f, study)

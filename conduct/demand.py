@@ -220,7 +220,7 @@ def estimate_demand(panel: Panel, study: Study, *, diagnostics: bool = True) -> 
     price_name, data = cols_in.price_name, cols_in.data
     exog, endog, instr = list(cols_in.exog), list(cols_in.endog), list(cols_in.instr)
 
-    prep = prepare(f, data, study, stage="demand")
+    prep = prepare(f, data, study, stage="demand", markets=panel.market_codes())
     cols = prep.columns
     n = len(f)
     exog_names = (["const"] if prep.constant else []) + exog

@@ -120,6 +120,7 @@ def prepare(
     study: Study,
     *,
     stage: str,
+    markets: np.ndarray | None = None,
 ) -> Prepared:
     """Absorb the study's fixed effects from named columns and choose the covariance.
 
@@ -132,13 +133,17 @@ def prepare(
     study : Study
     stage : str
         ``demand`` or ``supply``, for messages.
+    markets : numpy.ndarray or None
+        (n,) integer market codes of the rows when known (e.g. ``Panel.market_codes``,
+        taken at the rows used), in the sorted order of the labels; else coded from
+        ``_market``.
 
     Returns
     -------
     Prepared
     """
     effects = study.demand.effects
-    markets = codes(frame[MARKET])
+    markets = codes(frame[MARKET]) if markets is None else dense_codes(markets)
     periods = codes(frame[TIME].to_numpy())
     groups = [g for name, g in (("market", markets), ("period", periods)) if name in effects]
     n_m, n_t = int(markets.max()) + 1, int(periods.max()) + 1

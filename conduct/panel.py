@@ -12,7 +12,7 @@ are read with the readers pandas has (:mod:`conduct.tableio`).
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -97,12 +97,28 @@ class Panel:
     assembly : Assembly or None
         Sources with their hashes and join coverage, derived variables, and the
         assembled table (:mod:`conduct.coverage`).
+    coded : (pandas.DataFrame, numpy.ndarray) or None
+        The frame the market codes were made for and the codes (read-only); see
+        :meth:`market_codes`.
     """
 
     frame: pd.DataFrame
     description: PanelDescription
     source_rows: np.ndarray
     assembly: Assembly | None = None
+    coded: tuple[pd.DataFrame, np.ndarray] | None = field(default=None, repr=False,
+                                                          compare=False)
+
+    def market_codes(self) -> np.ndarray:
+        """Codes 0..G-1 of each row's market, in the sorted order of the labels.
+
+        Kept from loading when ``coded`` holds this very frame (a panel made by
+        ``dataclasses.replace`` with another frame recomputes them), else coded
+        from ``_market``; equal to ``np.unique(frame['_market'], return_inverse=True)[1]``.
+        """
+        if self.coded is not None and self.coded[0] is self.frame:
+            return self.coded[1]
+        return pd.factorize(self.frame[MARKET], sort=True)[0].astype(np.int64, copy=False)
 
     @property
     def sources(self) -> tuple[SourceRecord, ...]:
@@ -328,7 +344,12 @@ def load_panel(study: Study) -> Panel:
         sha256=origin.sha256(),
     )
     assembly = replace(origin, table=_user_table(full, study))
-    return Panel(frame=frame, description=desc, source_rows=rows, assembly=assembly)
+    present_m = np.bincount(m_codes) > 0
+    m_codes = ((np.cumsum(present_m) - 1)[m_codes] if not present_m.all()  # dense 0..G-1
+               else np.array(m_codes, dtype=np.int64))
+    m_codes.flags.writeable = False
+    return Panel(frame=frame, description=desc, source_rows=rows, assembly=assembly,
+                 coded=(frame, m_codes))
 
 
 def describe_assembly(panel: Panel, first_rows: int = 5) -> str:

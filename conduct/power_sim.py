@@ -68,7 +68,7 @@ import numpy as np
 from conduct.demand import DemandResult
 from conduct.design import Prepared, codes
 from conduct.iv import IVFit
-from conduct.panel import MARKET, TIME, Panel
+from conduct.panel import TIME, Panel
 from conduct.study import Candidate, Study
 from conduct.supply import SupplyResult
 
@@ -187,7 +187,7 @@ def estimated_structure(panel: Panel, study: Study, demand: DemandResult,
         h=supply.h,
         demand_shock=e * _dof_scale(demand.fit, demand.prepared),
         cost_shock=u * _dof_scale(fit, supply.prepared),
-        markets=codes(f[MARKET]),
+        markets=panel.market_codes(),
         periods=codes(f[TIME].to_numpy()),
         observed_price=p,
     )

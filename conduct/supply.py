@@ -354,7 +354,9 @@ def build_system(
         hc = _markup_h(c, h, len(rows))
         if hc is not None:
             data[f"_dep:{c.name}"] = p - hc * qstar
-    prep = prepare(fs, data, study, stage="supply")
+    mk = panel.market_codes()
+    prep = prepare(fs, data, study, stage="supply",
+                   markets=mk if len(rows) == n_all else mk[rows])
     cols = prep.columns
     n = len(rows)
     exog_names = (["const"] if prep.constant else []) + list(s.cost_shifters)

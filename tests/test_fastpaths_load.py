@@ -327,3 +327,26 @@ def test_derived_tables_equal_one_matrix_per_model(tmp_path: Path, case: str) ->
     assert got.negative_cost_share == shares
     _same_bits(got.by_period, tables["period"])
     _same_bits(got.by_market, tables["market"])
+
+
+@pytest.mark.parametrize("ids", ["integers", "text"])
+def test_market_codes_kept_from_loading_equal_numpy_unique(tmp_path: Path, ids: str) -> None:
+    # 12 markets: integer ids 1..12 sort differently as numbers and as text ("10" < "2");
+    # every row of market 5 is dropped, so the kept codes must be made dense again
+    frame = cournot_frame(12, 6, seed=8)
+    if ids == "text":
+        frame["region"] = ["Zone " + chr(0x3b1 + (int(v) * 7) % 12) + str(v)
+                           for v in frame["region"]]
+    frame.loc[frame.index[24:30], "income"] = np.nan
+    frame.sample(frac=1.0, random_state=1).to_csv(tmp_path / "panel.csv", index=False)
+    spec = {**BASE_SPEC, "panel": {**BASE_SPEC["panel"], "drop_missing": True}}
+    (tmp_path / "study.toml").write_text(to_toml(spec), encoding="utf-8")
+    panel = load_panel(load_study(tmp_path / "study.toml"))
+    expected = np.unique(panel.frame[MARKET].to_numpy(dtype=object), return_inverse=True)[1]
+    kept = panel.market_codes()
+    assert panel.coded is not None and panel.coded[1] is kept  # served from loading
+    np.testing.assert_array_equal(kept, expected)
+    assert kept.max() == 10 and not kept.flags.writeable
+    # a panel given another frame (as the bootstrap makes) codes its own markets
+    other = panel.frame.iloc[::-1].reset_index(drop=True)
+    np.testing.assert_array_equal(replace(panel, frame=other).market_codes(), expected[::-1])
