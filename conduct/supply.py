@@ -223,6 +223,41 @@ class SupplySystem:
                      projection=self.projection)
         return fit, cluster_cov(self.influence(fit, hvec), self.full_cov, fit.k)
 
+    def solve_coefficient(self, dependent: str, hvec: np.ndarray, index: int
+                          ) -> tuple[float, float]:
+        """One coefficient of :meth:`solve` and its sequential standard error, alone.
+
+        The same numbers as ``solve`` (to rounding) without forming the fit's
+        (n, k) influence or covariance: only column ``index`` of the sequential
+        influence is built and summed by cluster.
+
+        Parameters
+        ----------
+        dependent : str
+            As for :meth:`solve`.
+        hvec : numpy.ndarray
+            As for :meth:`solve`.
+        index : int
+            Position of the coefficient in ``names`` (one of ``theta_index``).
+
+        Returns
+        -------
+        (float, float)
+            The coefficient and its standard error.
+        """
+        proj = self.projection
+        y = self.prepared.columns[dependent]
+        b = proj.bread @ (proj.xhat.T @ y)
+        e = y - proj.x @ b
+        n = len(self.rows)
+        own = n * e * (proj.xhat @ proj.bread[:, index])  # column index of the fit's influence
+        deltas = b[list(self.theta_index)][self.group]
+        g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
+        psi = self.psi_demand @ (self.a_mat[index] @ g_alpha)
+        add_rows(psi, self.rows, (self.n_all / n) * own)
+        var = cluster_cov(psi[:, None], self.full_cov, len(b))[0, 0]
+        return float(b[index]), float(np.sqrt(var))
+
     def influence(self, fit: IVFit, hvec: np.ndarray) -> np.ndarray:
         """Sequential influence functions of a fit on the full panel.
 
@@ -420,9 +455,7 @@ def estimate_supply(panel: Panel, study: Study, demand: DemandResult, *,
         hc = _markup_h(c, h, n)
         if hc is None:
             continue
-        fit_c, cov_c = sys_.solve(f"_dep:{c.name}", hc)
-        delta = float(fit_c.params[i_theta])
-        se_c = float(np.sqrt(cov_c[i_theta, i_theta]))
+        delta, se_c = sys_.solve_coefficient(f"_dep:{c.name}", hc, i_theta)
         stat = (delta / se_c) ** 2
         pval = float(stats.chi2.sf(stat, 1))
         what = "theta = H (Herfindahl, or 1/N)" if c.theta is None else f"theta = {c.theta:g}"

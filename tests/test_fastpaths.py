@@ -328,3 +328,24 @@ def test_group_sums_remember_runs_only_of_read_only_codes() -> None:
     group_sums(moving, a)
     moving[:] = np.repeat(np.arange(30), 20)
     np.testing.assert_allclose(group_sums(moving, a), np.eye(30)[moving].T @ a, atol=1e-12)
+
+
+@pytest.mark.parametrize("errors", ["cluster", "robust", "hac", "homoskedastic"])
+def test_one_coefficient_equals_the_full_solve(tmp_path, errors: str) -> None:  # type: ignore[no-untyped-def]
+    # the candidate tests take theta and its sequential se without the full (n, k) fit
+    from conduct.demand import estimate_demand
+    from conduct.supply import _markup_h, build_system
+
+    panel, study = _kernel_case(tmp_path, {"cost_slope": 0.02}, {"errors": errors})
+    demand = estimate_demand(panel, study, diagnostics=False)
+    system = build_system(panel, study, demand, candidates=study.candidates)
+    i = system.theta_index[0]
+    n = len(system.rows)
+    for c in study.candidates:
+        hc = _markup_h(c, system.h, n)
+        if hc is None:
+            continue
+        fit, cov = system.solve(f"_dep:{c.name}", hc)
+        coef, se = system.solve_coefficient(f"_dep:{c.name}", hc, i)
+        assert coef == pytest.approx(float(fit.params[i]), rel=1e-10, abs=1e-12)
+        assert se == pytest.approx(float(np.sqrt(cov[i, i])), rel=1e-9)
