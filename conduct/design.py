@@ -98,7 +98,7 @@ def cluster_codes(frame: pd.DataFrame, study: Study, stage: str = "demand",
             c = known[name]
         else:
             c = codes(frame[col].astype(str) if col not in (MARKET, TIME) else frame[col])
-            c.flags.writeable = False  # shared by later stages; lets group sums remember runs
+        c.flags.writeable = False  # shared by later stages; lets group sums remember runs
         if int(c.max()) + 1 < 2:
             if name == "market":
                 raise EstimationError(

@@ -71,10 +71,10 @@ class CovSpec:
         """(codes, sign) of each clustering whose sandwich enters the covariance."""
         if self.clusters is None:
             raise ValueError("cluster covariance needs clusters")
-        c1 = dense_codes(self.clusters)
+        c1 = cluster_ids(self.clusters)
         if self.clusters2 is None:
             return [(c1, 1.0)]
-        c2 = dense_codes(self.clusters2)
+        c2 = cluster_ids(self.clusters2)
         both = dense_codes(c1 * (int(c2.max()) + 1) + c2)
         return [(c1, 1.0), (c2, 1.0), (both, -1.0)]
 
@@ -186,7 +186,7 @@ def _convention_core(cov: CovSpec, n: int, k: int) -> str:
             return (f"two-way cluster-robust ({gs[0]} x {gs[1]} clusters; Cameron, Gelbach & "
                     f"Miller 2011): V1 + V2 - V12, each G/(G-1) x (n-1)/({dof}) x sandwich "
                     "(absorbed effects nested in clusters not counted)")
-        g = int(dense_codes(cov.clusters).max()) + 1 if cov.clusters is not None else 0
+        g = int(cluster_ids(cov.clusters).max()) + 1 if cov.clusters is not None else 0
         return (f"cluster-robust, {g} clusters: G/(G-1) x (n-1)/({dof}) x sandwich "
                 "(absorbed effects nested in clusters not counted)")
     return f"Newey-West (Bartlett, {cov.lags(n)} lags): n/({dof}) x HAC"
@@ -301,6 +301,33 @@ def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.nda
 
 
 _RUNS: dict[int, tuple[weakref.ref[np.ndarray], int, np.ndarray | None]] = {}
+_DENSE: dict[int, weakref.ref[np.ndarray]] = {}
+
+
+def _forget_dead(cache: dict[int, Any]) -> None:
+    for key in [k for k, v in cache.items() if (v[0] if isinstance(v, tuple) else v)() is None]:
+        del cache[key]
+
+
+def cluster_ids(values: np.ndarray) -> np.ndarray:
+    """``dense_codes(values)``, or ``values`` itself when already coded 0..G-1 and read-only.
+
+    Stage cluster codes are read-only dense codes (:func:`conduct.design.cluster_codes`);
+    recognising them (remembered per array) keeps them the same object, so that
+    :func:`group_sums` can remember their runs too.
+    """
+    if isinstance(values, np.ndarray) and not values.flags.writeable and values.base is None \
+            and values.dtype == np.int64:
+        hit = _DENSE.get(id(values))
+        if hit is not None and hit() is values:
+            return values
+        coded = dense_codes(values)
+        if np.array_equal(coded, values):
+            _forget_dead(_DENSE)
+            _DENSE[id(values)] = weakref.ref(values)
+            return values
+        return coded
+    return dense_codes(values)
 
 
 def _runs(codes: np.ndarray) -> tuple[int, np.ndarray | None]:
@@ -320,8 +347,7 @@ def _runs(codes: np.ndarray) -> tuple[int, np.ndarray | None]:
         if len(starts) != g:
             starts = None
     if not codes.flags.writeable and codes.base is None:
-        for k in [k for k, v in _RUNS.items() if v[0]() is None]:
-            del _RUNS[k]
+        _forget_dead(_RUNS)
         _RUNS[key] = (weakref.ref(codes), g, starts)
     return g, starts
 
@@ -584,7 +610,7 @@ def hansen_j(y: np.ndarray, x: np.ndarray, z: np.ndarray, cov: CovSpec,
         s_mat = (e1 @ e1 / n) * (z.T @ z / n)
     elif cov.kind == "cluster":
         assert cov.clusters is not None
-        sums = group_sums(dense_codes(cov.clusters), ze)
+        sums = group_sums(cluster_ids(cov.clusters), ze)
         s_mat = sums.T @ sums / n
     else:
         s_mat = ze.T @ ze / n

@@ -34,9 +34,8 @@ import numpy as np
 import scipy.linalg as sla
 from scipy import optimize, stats
 
-from conduct.absorb import dense_codes
 from conduct.errors import EstimationError, IdentificationError
-from conduct.iv import group_sums, ls_coef, orthonormal_basis, r_factor
+from conduct.iv import cluster_ids, group_sums, ls_coef, orthonormal_basis, r_factor
 
 __all__ = [
     "ARSet",
@@ -376,7 +375,7 @@ def _design(
         cl = np.asarray(clusters)
         if cl.shape != (n,):
             raise EstimationError(f"clusters must have shape ({n},), got {cl.shape}")
-        codes = dense_codes(cl)
+        codes = cluster_ids(cl)
         n_groups = int(codes.max()) + 1
         if n_groups <= k:
             raise EstimationError(

@@ -349,3 +349,19 @@ def test_one_coefficient_equals_the_full_solve(tmp_path, errors: str) -> None:  
         coef, se = system.solve_coefficient(f"_dep:{c.name}", hc, i)
         assert coef == pytest.approx(float(fit.params[i]), rel=1e-10, abs=1e-12)
         assert se == pytest.approx(float(np.sqrt(cov[i, i])), rel=1e-9)
+
+
+def test_cluster_ids_keep_read_only_dense_codes_and_code_the_rest() -> None:
+    from conduct.absorb import dense_codes
+    from conduct.iv import cluster_ids
+    dense = np.repeat(np.arange(5, dtype=np.int64), 3)
+    dense.flags.writeable = False
+    assert cluster_ids(dense) is dense and cluster_ids(dense) is dense  # remembered
+    gaps = np.repeat(np.array([3, 9, 4], dtype=np.int64), 2)
+    gaps.flags.writeable = False
+    np.testing.assert_array_equal(cluster_ids(gaps), dense_codes(gaps))
+    assert cluster_ids(gaps) is not gaps
+    labels = np.array(["b", "a", "b", "c"], dtype=object)
+    np.testing.assert_array_equal(cluster_ids(labels), [1, 0, 1, 2])
+    writeable = np.repeat(np.arange(4, dtype=np.int64), 2)
+    assert cluster_ids(writeable) is not writeable  # may change later: always coded afresh
