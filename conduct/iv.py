@@ -21,6 +21,7 @@ parameters (including the intercept they absorb).
 
 from __future__ import annotations
 
+import threading
 import warnings
 import weakref
 from dataclasses import dataclass, replace
@@ -302,11 +303,14 @@ def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.nda
 
 _RUNS: dict[int, tuple[weakref.ref[np.ndarray], int, np.ndarray | None]] = {}
 _DENSE: dict[int, weakref.ref[np.ndarray]] = {}
+_CACHE_LOCK = threading.Lock()  # replicates may run on threads (e.g. Dask workers)
 
 
-def _forget_dead(cache: dict[int, Any]) -> None:
-    for key in [k for k, v in cache.items() if (v[0] if isinstance(v, tuple) else v)() is None]:
-        del cache[key]
+def _remember(cache: dict[int, Any], key: int, value: Any) -> None:
+    with _CACHE_LOCK:
+        for k in [k for k, v in cache.items() if (v[0] if isinstance(v, tuple) else v)() is None]:
+            del cache[k]
+        cache[key] = value
 
 
 def cluster_ids(values: np.ndarray) -> np.ndarray:
@@ -323,8 +327,7 @@ def cluster_ids(values: np.ndarray) -> np.ndarray:
             return values
         coded = dense_codes(values)
         if np.array_equal(coded, values):
-            _forget_dead(_DENSE)
-            _DENSE[id(values)] = weakref.ref(values)
+            _remember(_DENSE, id(values), weakref.ref(values))
             return values
         return coded
     return dense_codes(values)
@@ -347,8 +350,7 @@ def _runs(codes: np.ndarray) -> tuple[int, np.ndarray | None]:
         if len(starts) != g:
             starts = None
     if not codes.flags.writeable and codes.base is None:
-        _forget_dead(_RUNS)
-        _RUNS[key] = (weakref.ref(codes), g, starts)
+        _remember(_RUNS, key, (weakref.ref(codes), g, starts))
     return g, starts
 
 

@@ -365,3 +365,22 @@ def test_cluster_ids_keep_read_only_dense_codes_and_code_the_rest() -> None:
     np.testing.assert_array_equal(cluster_ids(labels), [1, 0, 1, 2])
     writeable = np.repeat(np.arange(4, dtype=np.int64), 2)
     assert cluster_ids(writeable) is not writeable  # may change later: always coded afresh
+
+
+def test_group_sums_from_many_threads_agree_with_bincount() -> None:
+    # replicates may run on threads (Dask workers); the remembered runs are shared
+    from concurrent.futures import ThreadPoolExecutor
+
+    from conduct.iv import cluster_ids, group_sums
+    a = np.random.default_rng(2).normal(size=(400, 2))
+
+    def one(i: int) -> bool:
+        codes = np.repeat(np.arange(40 + i % 7, dtype=np.int64), 1)
+        codes = np.resize(np.sort(codes), 400).astype(np.int64)
+        codes.sort()
+        codes.flags.writeable = False
+        ref = np.column_stack([np.bincount(codes, weights=a[:, j]) for j in range(2)])
+        return bool(np.allclose(group_sums(cluster_ids(codes), a), ref, atol=1e-12))
+
+    with ThreadPoolExecutor(8) as pool:
+        assert all(pool.map(one, range(400)))
