@@ -68,7 +68,8 @@ def keep_freed_memory() -> bool:
     global _applied
     if _applied is not None:
         return _applied
-    if os.environ.get("CONDUCT_KEEP_FREED_MEMORY", "1").strip() in ("0", "false", "no"):
+    if os.environ.get("CONDUCT_KEEP_FREED_MEMORY", "1").strip().lower() in ("0", "false", "no",
+                                                                              "off"):
         _applied = False
         return False
     libc = _glibc()

@@ -316,34 +316,44 @@ def menu_test(
         )
 
     sets = dict(instrument_sets) if instrument_sets else {DEFAULT_SET: supply.instruments}
+    # Columns with the fixed effects absorbed: the supply stage's own (same rows, same
+    # effects) where it has them (its ``_dep:<model>`` is ``P - markup``), else absorbed here.
+    # Instruments are taken from it only under the supply stage's own instrument names.
+    have = supply.prepared.columns
+    own = set(supply.instruments)
+    cols: dict[str, np.ndarray] = {}
+    raw: dict[str, np.ndarray] = {}
+    frame_used: list[pd.DataFrame] = []
+
+    def rows_frame() -> pd.DataFrame:
+        if not frame_used:
+            frame_used.append(f if len(rows) == len(f) else
+                              f.iloc[rows].reset_index(drop=True))
+        return frame_used[0]
+
+    for key, src, value in [("_p", "_p", lambda: p), ("_q", "Q", lambda: q),
+                            *((c, c, lambda c=c: rows_frame()[c].to_numpy(dtype=float))
+                              for c in s.cost_shifters),
+                            *((f"_e:{m}", f"_dep:{m}", lambda m=m: p - markups[m])
+                              for m in models)]:
+        if src in have:
+            cols[key] = have[src]
+        else:
+            raw[key] = value()
     for name, instr in sets.items():
         if not instr:
             raise EstimationError(f"Menu test: instrument set '{name}' is empty.")
-    # Columns with the fixed effects absorbed: the supply stage's own (same rows, same
-    # effects) where it has them (its ``_dep:<model>`` is ``P - markup``), else absorbed here.
-    have = supply.prepared.columns
-    wanted = {"_p": "_p", "_q": "Q", **{c: c for c in s.cost_shifters},
-              **{f"_e:{m}": f"_dep:{m}" for m in models},
-              **{f"_z:{col}": col for instr in sets.values() for col in instr}}
-    cols = {key: have[src] for key, src in wanted.items() if src in have}
-    missing = [key for key in wanted if key not in cols]
-    prep = supply.prepared
-    if missing:
-        fs = f if len(rows) == len(f) else f.iloc[rows].reset_index(drop=True)
-        raw: dict[str, np.ndarray] = {}
-        for key in missing:
-            if key == "_p":
-                raw[key] = p
-            elif key == "_q":
-                raw[key] = q
-            elif key.startswith("_e:"):
-                raw[key] = p - markups[key[3:]]
-            elif key.startswith("_z:"):
-                where = next(nm for nm, instr in sets.items() if key[3:] in instr)
-                raw[key] = _column(fs, key[3:], f"instrument set '{where}'")
+        for col in instr:
+            key = f"_z:{col}"
+            if key in cols or key in raw:
+                continue
+            if col in own and col in have:
+                cols[key] = have[col]
             else:
-                raw[key] = fs[key].to_numpy(dtype=float)
-        prep = prepare(fs, raw, study, stage="supply")
+                raw[key] = _column(rows_frame(), col, f"instrument set '{name}'")
+    prep = supply.prepared
+    if raw:
+        prep = prepare(rows_frame(), raw, study, stage="supply")
         cols.update(prep.columns)
     w = np.column_stack(([np.ones(n)] if prep.constant else [])
                         + [cols[c] for c in s.cost_shifters]) if (

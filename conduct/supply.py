@@ -229,7 +229,8 @@ class SupplySystem:
 
         The same numbers as ``solve`` (to rounding) without forming the fit's
         (n, k) influence or covariance: only column ``index`` of the sequential
-        influence is built and summed by cluster.
+        influence is built and summed by cluster.  Under two-way clustering,
+        whose covariance is clipped as a whole, it is ``solve`` itself.
 
         Parameters
         ----------
@@ -245,6 +246,11 @@ class SupplySystem:
         (float, float)
             The coefficient and its standard error.
         """
+        if self.full_cov.clusters2 is not None:
+            # two-way clustering clips the whole (k, k) covariance (conduct.iv.cluster_cov):
+            # one coefficient alone would miss that
+            fit, cov = self.solve(dependent, hvec)
+            return float(fit.params[index]), float(np.sqrt(cov[index, index]))
         proj = self.projection
         y = self.prepared.columns[dependent]
         b = proj.bread @ (proj.xhat.T @ y)

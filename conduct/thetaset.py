@@ -179,6 +179,8 @@ class _Linear:
         self.kz, self.kr, self.nuisance = sh.kz, sh.kr, sh.nuisance
         self.terms = [(factor / sh.n_all**2, [s0, s1, s2]) for (_, factor), s0, s1, s2
                       in zip(sh.terms, sums0, sums1, sums2, strict=True)]
+        # two-way clustering: V1 + V2 - V12 need not be positive semi-definite
+        self.clip = any(factor < 0 for factor, _ in self.terms)
 
     def stat(self, theta0: float, c: float) -> float:
         pi = self.pi[0] + theta0 * self.pi[1] + c * self.pi[2]
@@ -188,6 +190,10 @@ class _Linear:
             v += factor * (s.T @ s)
         pz = pi[-self.kz:]
         vz = v[-self.kz:, -self.kz:]
+        if self.clip:  # as conduct.iv.cluster_cov: negative eigenvalues clipped (floored)
+            vals, vecs = np.linalg.eigh((vz + vz.T) / 2)
+            vals = np.maximum(vals, 1e-12 * max(float(vals.max()), 1e-300))
+            return float(np.sum((vecs.T @ pz) ** 2 / vals))
         return float(pz @ np.linalg.solve(vz, pz))
 
     def profile(self, theta0: float) -> float:

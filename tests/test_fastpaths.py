@@ -330,13 +330,15 @@ def test_group_sums_remember_runs_only_of_read_only_codes() -> None:
     np.testing.assert_allclose(group_sums(moving, a), np.eye(30)[moving].T @ a, atol=1e-12)
 
 
-@pytest.mark.parametrize("errors", ["cluster", "robust", "hac", "homoskedastic"])
+@pytest.mark.parametrize("errors", ["cluster", "two-way", "robust", "hac", "homoskedastic"])
 def test_one_coefficient_equals_the_full_solve(tmp_path, errors: str) -> None:  # type: ignore[no-untyped-def]
     # the candidate tests take theta and its sequential se without the full (n, k) fit
     from conduct.demand import estimate_demand
     from conduct.supply import _markup_h, build_system
 
-    panel, study = _kernel_case(tmp_path, {"cost_slope": 0.02}, {"errors": errors})
+    edit = ({"errors": "cluster", "cluster": ("market", "period")} if errors == "two-way"
+            else {"errors": errors})
+    panel, study = _kernel_case(tmp_path, {"cost_slope": 0.02}, edit)
     demand = estimate_demand(panel, study, diagnostics=False)
     system = build_system(panel, study, demand, candidates=study.candidates)
     i = system.theta_index[0]

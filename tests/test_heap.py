@@ -58,8 +58,9 @@ def test_large_blocks_come_from_the_heap_once_settings_are_on():
 
 
 @pytest.mark.skipif(not _glibc_with_mallinfo2(), reason="needs glibc >= 2.33 (mallinfo2)")
-def test_environment_variable_turns_it_off():
-    off = _probe("on", CONDUCT_KEEP_FREED_MEMORY="0")
+@pytest.mark.parametrize("value", ["0", "False", " no "])
+def test_environment_variable_turns_it_off(value: str):
+    off = _probe("on", CONDUCT_KEEP_FREED_MEMORY=value)
     assert off["applied"] == "False"
     assert off["hblks"] == "1"
 

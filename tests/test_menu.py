@@ -344,6 +344,15 @@ def test_bad_inputs_are_named(strong):
     study, panel, demand, supply, _ = strong["cournot"]
     with pytest.raises(DataError, match=r"'diesle'.*not a column"):
         menu_test(panel, study, demand, supply, instrument_sets={"typo": ["diesle"]})
+    # the supply stage's internal columns (Q*, quantity, P - markup) are not instruments,
+    # even though the menu test reuses that stage's absorbed instruments
+    for internal in ("Q*", "Q", "_dep:collusive", "_p"):
+        with pytest.raises(DataError, match="not a column"):
+            menu_test(panel, study, demand, supply,
+                      instrument_sets={"inside": [internal, "winter_severity"]})
+    # sets are checked in their order: the first set's bad column is named first
+    with pytest.raises(DataError, match=r"'diesle'.*not a column"):
+        menu_test(panel, study, demand, supply, instrument_sets={"a": ["diesle"], "b": []})
     with pytest.raises(EstimationError, match="only 1 can be tested"):
         menu_test(panel, dataclasses.replace(study, candidates=(Candidate("cournot", None),)),
                   demand, supply)

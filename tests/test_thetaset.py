@@ -45,3 +45,20 @@ def test_candidate_ar_equals_set_statistic_at_fixed_theta(res):
         assert p == pytest.approx(stats.chi2.sf(stat, df), rel=1e-12)
     # Cournot's markup varies with H by row; its AR statistic is still finite
     assert np.isfinite(res.candidate_ar["cournot"][0])
+
+
+def test_two_way_clustering_keeps_ar_statistics_non_negative(tmp_path):
+    # V1 + V2 - V12 (Cameron, Gelbach & Miller 2011) need not be positive semi-definite;
+    # as for the Wald tests its negative eigenvalues are clipped, so the statistic minimised
+    # over the free cost slope cannot run off to minus infinity
+    path = write_study(tmp_path, SimulationSpec(markets=14, periods=12, seed=3, cost_slope=0.02))
+    text = path.read_text()
+    assert 'errors = "cluster"' in text
+    path.write_text(text.replace('errors = "cluster"',
+                                 'errors = "cluster"\ncluster = ["market", "period"]', 1))
+    res = conduct.estimate(path)
+    assert res.demand.fit.cov_spec.clusters2 is not None
+    assert res.study.supply is not None and res.study.supply.cost_slope
+    for stat, _df, p in res.candidate_ar.values():
+        assert np.isfinite(stat) and stat >= 0 and 0 <= p <= 1
+    assert res.theta_set is not None and res.theta_set.stat_at_estimate >= 0
