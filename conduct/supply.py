@@ -305,6 +305,16 @@ def supply_columns(frame: pd.DataFrame, study: Study
         (interactions ``a*b`` multiplied out), each (n,).
     """
     assert study.supply is not None
+    for role, names in (("cost shifter", study.supply.cost_shifters),
+                        ("instrument", supply_instruments(study))):
+        clash = [c for c in names if c in ("Q", QSTAR)]
+        if clash:
+            raise DataError(
+                f"Column '{clash[0]}' is a supply-relation {role}, but the supply relation "
+                f"names quantity 'Q' and the markup regressor '{QSTAR}' in its equations and "
+                "tables, so the two would be confused. Rename that column in the data file "
+                "and in the study file (e.g. 'q_index')."
+            )
     data: dict[str, np.ndarray] = {"_p": frame[study.panel.price].to_numpy(dtype=float),
                                    "Q": frame[study.panel.quantity].to_numpy(dtype=float)}
     for c in study.supply.cost_shifters:

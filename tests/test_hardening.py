@@ -15,7 +15,7 @@ fix.  The note at the end of this docstring is the corpus summary asked for in i
 
 Corpus note (issue 10, item 6)
 ------------------------------
-75 bad-input cases in :data:`CORPUS` (none xfail), 7 accepted
+76 bad-input cases in :data:`CORPUS` (none xfail), 7 accepted
 readings, 3 reading hints, plus hostile-string and never-evaluated tests at the end of
 this module; ``tests/test_properties.py`` fuzzes the same loaders.  By input class:
 
@@ -45,6 +45,9 @@ this module; ``tests/test_properties.py`` fuzzes the same loaders.  By input cla
   numbers: exit 2 naming sheet or column and rows; clean text numbers in Parquet are
   read.  A Stata column with value labels in a numeric role: exit 2 naming the column
   and its labels and how to drop them; labelled market ids are read as codes.
+* a supply cost shifter or instrument named ``Q`` or ``Q*`` (the supply relation's own
+  names for quantity and the markup regressor, which it used to overwrite silently):
+  exit 2 naming the column and asking to rename it.
 """
 
 from __future__ import annotations
@@ -463,6 +466,11 @@ CORPUS: list[Case] = [
          both(frame(lambda f: f.rename(columns={"tonnes": "数量"})),
               study(lambda s: s["panel"].update(quantity="数值"))),
          ("'数值'", "数量")),
+    # --- a column named like the supply relation's own terms (was silently overwritten)
+    Case("column-named-Q", "reserved names",
+         both(frame(lambda f: f.rename(columns={"income": "Q"})),
+              study(lambda s: s["demand"].update(shifters=["Q"]))),
+         ("'Q'", "supply-relation instrument", "Rename"), stage="estimate"),
     # --- invalid TOML
     Case("toml-duplicate-key", "invalid TOML",
          study_text(lambda t: t.replace("[demand]\n", '[demand]\nform = "linear"\n'
@@ -614,7 +622,7 @@ def test_corpus_is_large_and_covers_every_class() -> None:
         "non-ASCII column names", "invalid TOML", "wrong types", "unknown keys",
         "missing or unreadable data file", "directory instead of file",
         "Excel with several sheets", "Parquet with string-typed numbers",
-        "Stata file with labelled categories",
+        "Stata file with labelled categories", "reserved names",
     }
     assert classes == expected
 
