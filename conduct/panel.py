@@ -407,14 +407,15 @@ def row_fingerprints(panel: Panel, columns: tuple[str, ...]) -> pd.DataFrame:
         rows are new and which changed value (data revisions).
     """
     f = panel.frame
-    parts = []
+    parts: list[list[str]] = []
     for c in columns:
         v = f[c]
         if pd.api.types.is_float_dtype(v):
-            parts.append(v.map(lambda x: f"{x:.12g}"))
+            parts.append([f"{x:.12g}" for x in v.to_numpy(dtype=float).tolist()])
         else:
-            parts.append(v.astype(str))
-    joined = pd.concat(parts, axis=1).agg("\x1f".join, axis=1) if parts else pd.Series("")
+            parts.append(v.astype(str).tolist())
+    joined = (["\x1f".join(row) for row in zip(*parts, strict=True)] if parts
+              else [""] * len(f))
     hashes = [hashlib.sha1(s.encode("utf-8")).hexdigest()[:16] for s in joined]
     return pd.DataFrame({"market": f[MARKET].to_numpy(), "period": f[PERIOD].to_numpy(),
                          "hash": hashes})

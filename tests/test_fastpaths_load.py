@@ -350,3 +350,28 @@ def test_market_codes_kept_from_loading_equal_numpy_unique(tmp_path: Path, ids: 
     # a panel given another frame (as the bootstrap makes) codes its own markets
     other = panel.frame.iloc[::-1].reset_index(drop=True)
     np.testing.assert_array_equal(replace(panel, frame=other).market_codes(), expected[::-1])
+
+
+def test_row_fingerprints_equal_hashing_each_row_text(tmp_path: Path) -> None:
+    # earlier runs' fingerprints must stay comparable: the same text per row (floats to 12
+    # significant digits, fields joined by the unit separator) and the same SHA-1 prefix
+    import hashlib
+
+    from conduct.panel import row_fingerprints
+    frame = cournot_frame(7, 9, seed=12)
+    frame["region"] = [f"Zone, {v}" for v in frame["region"]]  # text with a comma
+    frame.to_csv(tmp_path / "panel.csv", index=False)
+    (tmp_path / "study.toml").write_text(to_toml(BASE_SPEC), encoding="utf-8")
+    study = load_study(tmp_path / "study.toml")
+    panel = load_panel(study)
+    got = row_fingerprints(panel, study.columns())
+    f = panel.frame
+    parts = [f[c].map(lambda x: f"{x:.12g}") if pd.api.types.is_float_dtype(f[c])
+             else f[c].astype(str) for c in study.columns()]
+    joined = pd.concat(parts, axis=1).agg("\x1f".join, axis=1)  # row by row, as first written
+    expected = [hashlib.sha1(s.encode("utf-8")).hexdigest()[:16] for s in joined]
+    assert list(got["hash"]) == expected
+    assert list(got["market"]) == list(f[MARKET]) and list(got["period"]) == list(f[PERIOD])
+    row = "\x1f".join(f"{v:.12g}" if isinstance(v, float) else str(v)
+                      for v in f.loc[3, list(study.columns())])
+    assert got["hash"][3] == hashlib.sha1(row.encode("utf-8")).hexdigest()[:16]
