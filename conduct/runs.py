@@ -32,7 +32,7 @@ from conduct.panel import row_fingerprints
 from conduct.pipeline import Results
 from conduct.report import write_outputs
 from conduct.summary import build_summary
-from conduct.tables import spreadsheet_safe
+from conduct.tables import spreadsheet_safe, write_csv
 
 __all__ = [
     "HISTORY_COLUMNS", "data_changes", "ensure_history", "read_history",
@@ -209,7 +209,7 @@ def write_run(res: Results, *, label: str | None = None,
             "versions": _versions(),
         }
         obs = spreadsheet_safe(res.derived.observations)
-        obs.to_csv(tmp / "observations.csv", index=False, float_format="%.10g")
+        write_csv(obs, tmp / "observations.csv", float_format="%.10g")
         for key, table in (("period", res.derived.by_period),
                            ("market", res.derived.by_market)):
             if table is not None:

@@ -12,7 +12,9 @@ rounded numbers, escaped names and no timestamp, so reruns diff cleanly.
 
 from __future__ import annotations
 
+import csv
 import math
+import os
 import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -42,6 +44,7 @@ __all__ = [
     "supply_table",
     "tables_tex",
     "to_booktabs",
+    "write_csv",
     "write_tables",
 ]
 
@@ -340,6 +343,43 @@ def spreadsheet_safe(frame: pd.DataFrame) -> pd.DataFrame:
                 lambda v: "'" + v if isinstance(v, str) and v[:1] in "=+-@\t\r" and v else v
             )
     return out
+
+
+def write_csv(frame: pd.DataFrame, path: Path, float_format: str = "%.10g") -> None:
+    """``frame.to_csv(path, index=False, float_format=float_format)``, byte for byte, faster.
+
+    pandas formats every float cell through several Python calls; for the
+    per-observation table of a large panel (millions of cells) this formats
+    each column with one comprehension and writes the rows with the :mod:`csv`
+    module, which pandas itself writes through (minimal quoting, ``os.linesep``
+    line ends).  Columns other than float, integer, boolean and text fall back
+    to pandas.  Tests keep it equal to ``to_csv``.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+    path : Path
+    float_format : str
+        ``%``-format of float cells; missing floats are written as empty cells.
+    """
+    cols: list[list[str]] = []
+    for name in frame.columns:
+        s = frame[name]
+        kind = s.dtype.kind if isinstance(s.dtype, np.dtype) else ""
+        if kind == "f":
+            cols.append(["" if x != x else float_format % x
+                         for x in s.to_numpy(dtype=float).tolist()])
+        elif kind in "iub" and kind:
+            cols.append([str(x) for x in s.to_numpy().tolist()])
+        elif pd.api.types.is_string_dtype(s.dtype) and not s.isna().any():
+            cols.append([str(x) for x in s.to_numpy(dtype=object).tolist()])
+        else:
+            frame.to_csv(path, index=False, float_format=float_format)
+            return
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        out = csv.writer(fh, lineterminator=os.linesep)
+        out.writerow([str(c) for c in frame.columns])
+        out.writerows(zip(*cols, strict=True))
 
 
 def write_tables(res: Results, summary: Mapping[str, Any] | None, folder: Path) -> list[Path]:

@@ -375,3 +375,34 @@ def test_row_fingerprints_equal_hashing_each_row_text(tmp_path: Path) -> None:
     row = "\x1f".join(f"{v:.12g}" if isinstance(v, float) else str(v)
                       for v in f.loc[3, list(study.columns())])
     assert got["hash"][3] == hashlib.sha1(row.encode("utf-8")).hexdigest()[:16]
+
+
+@pytest.mark.parametrize("case", ["plain", "text-with-missing", "mixed-object"])
+def test_write_csv_equals_pandas_to_csv(tmp_path: Path, case: str) -> None:
+    from conduct.tables import spreadsheet_safe, write_csv
+    rng = np.random.default_rng(4)
+    n = 300
+    floats = rng.normal(size=n) * 10.0 ** rng.integers(-12, 15, n)
+    floats[:8] = [np.nan, np.inf, -np.inf, -0.0, 5e-324, 1e22, 0.1, 123456789012.0]
+    frame = pd.DataFrame({
+        "market": pd.array([f'M{i % 7}, "north"\n€' if i % 5 == 0 else f"M{i % 7}"
+                            for i in range(n)], dtype="string[pyarrow]"),
+        "period": [f"20{10 + i % 9}Q{1 + i % 4}" for i in range(n)],
+        "x": floats,
+        "count": rng.integers(-5, 5, n),
+        "flag": rng.integers(0, 2, n).astype(bool),
+        "formula": ["=1+1" if i % 3 == 0 else "plain" for i in range(n)],
+    })
+    if case == "text-with-missing":
+        frame.loc[3, "period"] = None
+    elif case == "mixed-object":
+        frame["mixed"] = pd.Series([1.5, "a", 2] * (n // 3), dtype=object)
+    frame = spreadsheet_safe(frame)
+    frame.to_csv(tmp_path / "pandas.csv", index=False, float_format="%.10g")
+    if case == "plain":  # the fast path itself, not the fallback to pandas
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(pd.DataFrame, "to_csv", lambda *a, **k: pytest.fail("fell back"))
+            write_csv(frame, tmp_path / "ours.csv", float_format="%.10g")
+    else:
+        write_csv(frame, tmp_path / "ours.csv", float_format="%.10g")
+    assert (tmp_path / "ours.csv").read_bytes() == (tmp_path / "pandas.csv").read_bytes()
