@@ -216,7 +216,7 @@ def write_run(res: Results, *, label: str | None = None,
                 spreadsheet_safe(table).to_csv(tmp / f"costs_by_{key}.csv", index=False,
                                                float_format="%.10g")
         prints = row_fingerprints(res.panel, res.study.columns())
-        spreadsheet_safe(prints).to_csv(tmp / FINGERPRINTS, index=False)
+        write_csv(spreadsheet_safe(prints), tmp / FINGERPRINTS)
         prev_summary, prev_prints, prev_id = _previous(runs)
         changes = data_changes(prints, prev_prints, prev_id)
         if changes is not None:

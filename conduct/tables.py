@@ -334,14 +334,20 @@ def build_tables(res: Results, summary: Mapping[str, Any] | None = None
 # ----------------------------------------------------------------------------------------
 
 
+_FORMULA_START = "=+-@\t\r"  # first characters a spreadsheet reads as a formula
+
+
 def spreadsheet_safe(frame: pd.DataFrame) -> pd.DataFrame:
     """Prefix text cells that a spreadsheet would run as formulas with an apostrophe."""
     out = frame.copy()
     for col in out.columns:
-        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
-            out[col] = out[col].map(
-                lambda v: "'" + v if isinstance(v, str) and v[:1] in "=+-@\t\r" and v else v
-            )
+        s = out[col]
+        # distinct values checked once (labels repeat across a large panel's rows)
+        if (s.dtype == object or pd.api.types.is_string_dtype(s)) and any(
+                isinstance(v, str) and v[:1] in _FORMULA_START and v
+                for v in pd.unique(s.to_numpy(dtype=object)).tolist()):
+            out[col] = s.map(lambda v: "'" + v if isinstance(v, str)
+                             and v[:1] in _FORMULA_START and v else v)
     return out
 
 
