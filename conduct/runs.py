@@ -215,8 +215,9 @@ def write_run(res: Results, *, label: str | None = None,
             if table is not None:
                 spreadsheet_safe(table).to_csv(tmp / f"costs_by_{key}.csv", index=False,
                                                float_format="%.10g")
-        prints = row_fingerprints(res.panel, res.study.columns())
-        write_csv(spreadsheet_safe(prints), tmp / FINGERPRINTS)
+        # compared as stored: labels a spreadsheet would run as formulas carry their prefix
+        prints = spreadsheet_safe(row_fingerprints(res.panel, res.study.columns()))
+        write_csv(prints, tmp / FINGERPRINTS)
         prev_summary, prev_prints, prev_id = _previous(runs)
         changes = data_changes(prints, prev_prints, prev_id)
         if changes is not None:

@@ -14,6 +14,7 @@ from conduct.cli import main
 from conduct.presets import write_study
 from conduct.runs import read_history
 from conduct.simulate import Episode, SimulationSpec
+from conduct.study import load_study
 
 
 def _quarterly_study(tmp_path: Path) -> tuple[Path, pd.DataFrame]:
@@ -70,6 +71,25 @@ def test_revised_rows_are_reported(tmp_path, capsys):
     out = json.loads(capsys.readouterr().out)
     assert out["data"]["changes"]["revised_rows"] == 2
     assert out["data"]["changes"]["new_rows"] == 0
+
+
+def test_formula_like_market_labels_are_not_new_rows_on_rerun(tmp_path, capsys):
+    # the fingerprint file stores labels spreadsheet-safe ("'-M1"); the next run must
+    # compare like with like, not report every such market as new and removed
+    spec = SimulationSpec(markets=10, periods=12, seed=4)
+    study = write_study(tmp_path / "f", spec)
+    panel = pd.read_csv(study.parent / "panel.csv")
+    market = load_study(study).panel.market
+    assert market is not None
+    panel[market] = "-" + panel[market].astype(str)
+    panel.to_csv(study.parent / "panel.csv", index=False)
+    assert main(["estimate", str(study), "--quiet"]) == 0
+    stored = (study.parent / "runs").glob("*/data_rows.csv")
+    assert any("'-" in p.read_text() for p in stored)
+    assert main(["estimate", str(study), "--json"]) == 0
+    changes = json.loads(capsys.readouterr().out)["data"]["changes"]
+    assert (changes["new_rows"], changes["removed_rows"], changes["revised_rows"]) == (0, 0, 0)
+    assert changes["new_markets"] == []
 
 
 def test_concurrent_runs_both_recorded(tmp_path):
