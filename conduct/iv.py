@@ -222,16 +222,24 @@ def ls_coef(a: np.ndarray, b: np.ndarray, max_cond: float = GRAM_COND) -> np.nda
     """
     if a.shape[1] == 0:
         return np.zeros((0, *b.shape[1:]))
+    scaled = _scaled_gram(a, max_cond)
+    if scaled is not None:
+        gram, scale = scaled
+        s = scale[:, None] if b.ndim == 2 else scale
+        return np.linalg.solve(gram, (a.T @ b) / s) / s
+    return np.linalg.lstsq(a, b, rcond=None)[0]
+
+
+def _scaled_gram(a: np.ndarray, max_cond: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """``(a'a / outer(s, s), s)`` with ``s`` the column norms, when its condition is below
+    ``max_cond``; None when it is not (or a column is zero or not finite)."""
     raw = a.T @ a
     scale = np.sqrt(np.diag(raw))
-    if np.all(scale > 0):
-        gram = raw / np.outer(scale, scale)
-        vals = np.linalg.eigvalsh(gram)
-        if vals[0] > 0 and vals[-1] / vals[0] < max_cond:
-            rhs = (a.T @ b) / (scale[:, None] if b.ndim == 2 else scale)
-            sol = np.linalg.solve(gram, rhs)
-            return sol / (scale[:, None] if b.ndim == 2 else scale)
-    return np.linalg.lstsq(a, b, rcond=None)[0]
+    if not (np.all(scale > 0) and np.all(np.isfinite(scale))):
+        return None
+    gram = raw / np.outer(scale, scale)
+    vals = np.linalg.eigvalsh(gram)
+    return (gram, scale) if vals[0] > 0 and vals[-1] / vals[0] < max_cond else None
 
 
 R_GRAM_COND = 1e8  # scaled cross-product condition up to which R comes from its Cholesky factor
@@ -257,16 +265,12 @@ def r_factor(a: np.ndarray) -> np.ndarray:
     numpy.ndarray
         (k, k) upper triangular.
     """
-    k = a.shape[1]
-    if k == 0:
+    if a.shape[1] == 0:
         return np.zeros((0, 0))
-    raw = a.T @ a
-    scale = np.sqrt(np.diag(raw))
-    if np.all(scale > 0) and np.all(np.isfinite(scale)):
-        gram = raw / np.outer(scale, scale)
-        vals = np.linalg.eigvalsh(gram)
-        if vals[0] > 0 and vals[-1] / vals[0] < R_GRAM_COND:
-            return np.linalg.cholesky(gram).T * scale
+    scaled = _scaled_gram(a, R_GRAM_COND)
+    if scaled is not None:
+        gram, scale = scaled
+        return np.linalg.cholesky(gram).T * scale
     r = np.linalg.qr(a, mode="r")
     return r * np.where(np.diag(r) < 0, -1.0, 1.0)[:, None]
 
@@ -302,13 +306,14 @@ def add_rows(target: np.ndarray, rows: np.ndarray, values: np.ndarray) -> np.nda
 
 
 _RUNS: dict[int, tuple[weakref.ref[np.ndarray], int, np.ndarray | None]] = {}
-_DENSE: dict[int, weakref.ref[np.ndarray]] = {}
+_DENSE: dict[int, tuple[weakref.ref[np.ndarray]]] = {}
 _CACHE_LOCK = threading.Lock()  # replicates may run on threads (e.g. Dask workers)
 
 
-def _remember(cache: dict[int, Any], key: int, value: Any) -> None:
+def _remember(cache: dict[int, Any], key: int, value: tuple[Any, ...]) -> None:
+    """Store ``value`` (a tuple led by a weak reference) and forget entries whose array died."""
     with _CACHE_LOCK:
-        for k in [k for k, v in cache.items() if (v[0] if isinstance(v, tuple) else v)() is None]:
+        for k in [k for k, v in cache.items() if v[0]() is None]:
             del cache[k]
         cache[key] = value
 
@@ -323,11 +328,11 @@ def cluster_ids(values: np.ndarray) -> np.ndarray:
     if isinstance(values, np.ndarray) and not values.flags.writeable and values.base is None \
             and values.dtype == np.int64:
         hit = _DENSE.get(id(values))
-        if hit is not None and hit() is values:
+        if hit is not None and hit[0]() is values:
             return values
         coded = dense_codes(values)
         if np.array_equal(coded, values):
-            _remember(_DENSE, id(values), weakref.ref(values))
+            _remember(_DENSE, id(values), (weakref.ref(values),))
             return values
         return coded
     return dense_codes(values)

@@ -318,14 +318,13 @@ def _residualise(W: np.ndarray, *arrays: np.ndarray) -> tuple[int, list[np.ndarr
     """Return rank(W) and each array minus its projection on W."""
     if W.shape[1] == 0:
         return 0, [a.copy() for a in arrays]
-    # singular vectors of W from those of its QR factor R (k x k): same s, O(n k^2)
+    # singular values of W from its R factor (k x k): the same, at O(n k^2)
     r = r_factor(W)
-    u_r, s, _ = np.linalg.svd(r)
+    s = np.linalg.svd(r, compute_uv=False)
     tol = s.max() * max(W.shape) * np.finfo(float).eps if s.size else 0.0
-    keep = s > tol
-    if keep.all():
+    if np.all(s > tol):
         U = orthonormal_basis(W, r)
-    else:
+    else:  # rank-deficient: the left singular vectors of the non-zero singular values
         q, r = np.linalg.qr(W)
         u_r, s, _ = np.linalg.svd(r)
         U = q @ u_r[:, s > tol]
