@@ -33,6 +33,7 @@ F-statistic flagged about 60% of those samples.  Read a rejection with a small
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from itertools import combinations
@@ -284,10 +285,9 @@ def menu_test(
     n_all = len(f)
     rows = supply.rows
     n = len(rows)
-    every_row = n == n_all
     p = f[study.panel.price].to_numpy(dtype=float)
     q = f[study.panel.quantity].to_numpy(dtype=float)
-    if not every_row:
+    if n < n_all:
         p, q = p[rows], q[rows]
     qstar = supply.qstar[rows]
     slope = demand.slope[rows]
@@ -323,23 +323,21 @@ def menu_test(
     own = set(supply.instruments)
     cols: dict[str, np.ndarray] = {}
     raw: dict[str, np.ndarray] = {}
-    frame_used: list[pd.DataFrame] = []
-
-    def rows_frame() -> pd.DataFrame:
-        if not frame_used:
-            frame_used.append(f if len(rows) == len(f) else
-                              f.iloc[rows].reset_index(drop=True))
-        return frame_used[0]
-
-    for key, src, value in [("_p", "_p", lambda: p), ("_q", "Q", lambda: q),
-                            *((c, c, lambda c=c: rows_frame()[c].to_numpy(dtype=float))
-                              for c in s.cost_shifters),
-                            *((f"_e:{m}", f"_dep:{m}", lambda m=m: p - markups[m])
-                              for m in models)]:
+    rows_frame = functools.cache(
+        lambda: f if n == n_all else f.iloc[rows].reset_index(drop=True))
+    wanted = {"_p": "_p", "_q": "Q", **{c: c for c in s.cost_shifters},
+              **{f"_e:{m}": f"_dep:{m}" for m in models}}
+    for key, src in wanted.items():
         if src in have:
             cols[key] = have[src]
+        elif key == "_p":
+            raw[key] = p
+        elif key == "_q":
+            raw[key] = q
+        elif key.startswith("_e:"):
+            raw[key] = p - markups[key[3:]]
         else:
-            raw[key] = value()
+            raw[key] = rows_frame()[key].to_numpy(dtype=float)
     for name, instr in sets.items():
         if not instr:
             raise EstimationError(f"Menu test: instrument set '{name}' is empty.")

@@ -257,9 +257,7 @@ class SupplySystem:
         e = y - proj.x @ b
         n = len(self.rows)
         own = n * e * (proj.xhat @ proj.bread[:, index])  # column index of the fit's influence
-        deltas = b[list(self.theta_index)][self.group]
-        g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
-        psi = self.psi_demand @ (self.a_mat[index] @ g_alpha)
+        psi = self.psi_demand @ self._demand_term(b, hvec)[index]
         add_rows(psi, self.rows, (self.n_all / n) * own)
         var = cluster_cov(psi[:, None], self.full_cov, len(b))[0, 0]
         return float(b[index]), float(np.sqrt(var))
@@ -280,11 +278,14 @@ class SupplySystem:
             (n, k) with ``b - beta ~ mean(psi_i)`` over all panel rows: the supply
             influence plus the demand influence times ``A G_alpha``.
         """
-        deltas = fit.params[list(self.theta_index)][self.group]
-        n = len(self.rows)
-        g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / n
-        psi = self.psi_demand @ (self.a_mat @ g_alpha).T
-        return add_rows(psi, self.rows, (self.n_all / n) * fit.influence)
+        psi = self.psi_demand @ self._demand_term(fit.params, hvec).T
+        return add_rows(psi, self.rows, (self.n_all / len(self.rows)) * fit.influence)
+
+    def _demand_term(self, params: np.ndarray, hvec: np.ndarray) -> np.ndarray:
+        """(k, k_d) derivative of the coefficients in the demand coefficients, ``A G_alpha``."""
+        deltas = params[list(self.theta_index)][self.group]
+        g_alpha = -(self.z.T @ ((hvec + deltas)[:, None] * self.dqstar)) / len(self.rows)
+        return self.a_mat @ g_alpha
 
 
 def supply_columns(frame: pd.DataFrame, study: Study

@@ -273,11 +273,11 @@ def candidate_ar_tests(panel: Panel, study: Study, demand: DemandResult,
     dict
         Candidate name -> (statistic, degrees of freedom, p-value).
     """
-    return _candidates(None, panel, study, demand, supply)
+    return _candidates(_Linear(_Shared(panel, study, demand, supply)), panel, study, supply)
 
 
-def _candidates(lin: _Linear | None, panel: Panel, study: Study, demand: DemandResult,
-                supply: SupplyResult) -> dict[str, tuple[float, int, float]]:
+def _candidates(lin: _Linear, panel: Panel, study: Study, supply: SupplyResult
+                ) -> dict[str, tuple[float, int, float]]:
     """Candidate AR tests; a fixed-theta candidate is the theta-set statistic at its theta.
 
     With markup ``theta_m Q*`` the candidate's linear pieces are ``theta_m`` times those
@@ -287,17 +287,14 @@ def _candidates(lin: _Linear | None, panel: Panel, study: Study, demand: DemandR
     h_all = benchmark_h(panel, study)
     out: dict[str, tuple[float, int, float]] = {}
     n = len(panel.frame)
-    shared: _Shared | None = lin.shared if lin is not None else None
     for c in study.candidates:
         h = np.full(n, c.theta) if c.theta is not None else h_all
         if h is None or f"_dep:{c.name}" not in supply.prepared.columns:
             continue
-        shared = shared or _Shared(panel, study, demand, supply)
         if c.theta is not None:
-            lin = lin or _Linear(shared)
             lin_c, at = lin, float(c.theta)
         else:
-            lin_c = _Linear(shared, markup=(supply.prepared.columns[f"_dep:{c.name}"], h))
+            lin_c = _Linear(lin.shared, markup=(supply.prepared.columns[f"_dep:{c.name}"], h))
             at = 1.0
         df = lin_c.kz - (1 if lin_c.nuisance else 0)
         stat = lin_c.profile(at)
@@ -324,5 +321,4 @@ def ar_inference(panel: Panel, study: Study, demand: DemandResult, supply: Suppl
     (ThetaSet, dict)
     """
     lin = _Linear(_Shared(panel, study, demand, supply))
-    return (_invert(lin, study, supply, grid_points),
-            _candidates(lin, panel, study, demand, supply))
+    return (_invert(lin, study, supply, grid_points), _candidates(lin, panel, study, supply))
